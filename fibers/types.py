@@ -1,0 +1,120 @@
+"""Small frozen dataclasses that flow from one stage to the next.
+
+Conventions (DESIGN.md section 4): points are ``(N, 3)`` float64 in mm in the scanner's world
+frame, tetrahedra ``(M, 4)`` int64, direction vectors unit length.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+# Boundary face tags, shared by the mesh, the FEM boundary conditions and every output file.
+ENDO, EPI, BASE = 1, 2, 3
+FACE_TAG_NAMES = {ENDO: "endo", EPI: "epi", BASE: "base"}
+
+
+@dataclass(frozen=True)
+class RawContours:
+    """Contour points exactly as read, one row per point.
+
+    Attributes
+    ----------
+    structure : ndarray (K,) of str
+        ``"endo"`` or ``"epi"``.
+    slice_id : ndarray (K,) int
+    points : ndarray (K, 3), mm
+    line : ndarray (K,) int
+        Line number in the source file (1-based, header is line 1), for error messages.
+    source : str
+        File name the rows came from.
+    """
+
+    structure: np.ndarray
+    slice_id: np.ndarray
+    points: np.ndarray
+    line: np.ndarray
+    source: str = "contours"
+
+
+@dataclass(frozen=True)
+class SliceContours:
+    """One short-axis slice after checking and alignment."""
+
+    slice_id: int
+    height: float            # mm along the long axis from the base plane (0) toward the apex (>0)
+    epi: np.ndarray          # (n, 3) mm, closed contour, counter-clockwise about the axis
+    endo: np.ndarray | None  # (m, 3) mm, or None on apical slices that show no cavity
+    shift: np.ndarray        # (3,) mm, in-plane breath-hold correction added to this slice
+
+
+@dataclass(frozen=True)
+class LongAxis:
+    """The left ventricle's long axis.
+
+    ``base_centre`` is where the axis meets the base plane; ``direction`` is a unit vector from
+    apex to base (the base plane's outward normal). ``reference`` is a unit vector normal to the
+    axis that fixes the zero of angles around it before landmarks are known.
+    """
+
+    base_centre: np.ndarray
+    direction: np.ndarray
+    reference: np.ndarray
+
+    def frame(self) -> np.ndarray:
+        """Rows e1, e2, e3 of a right-handed frame with e3 = ``direction`` (apex to base)."""
+        e3 = self.direction
+        e1 = self.reference
+        return np.stack([e1, np.cross(e3, e1), e3])
+
+    def to_local(self, points: np.ndarray) -> np.ndarray:
+        """World points (N, 3) mm to axis-frame coordinates (x1, x2, z); z > 0 above the base."""
+        return (np.asarray(points, float) - self.base_centre) @ self.frame().T
+
+    def to_world(self, local: np.ndarray) -> np.ndarray:
+        return np.asarray(local, float) @ self.frame() + self.base_centre
+
+
+@dataclass(frozen=True)
+class Stack:
+    """A checked short-axis stack, slices ordered from base to apex."""
+
+    slices: tuple[SliceContours, ...]
+    axis: LongAxis
+    source: str = "contours"
+    warnings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class WallMesh:
+    """Tetrahedral mesh of the left-ventricular wall.
+
+    Attributes
+    ----------
+    points : ndarray (N, 3) float64, mm
+    tets : ndarray (M, 4) int64, positively oriented (positive signed volume)
+    faces : ndarray (F, 3) int64
+        Boundary triangles, ordered so their right-hand normal points out of the wall.
+    face_tags : ndarray (F,) int
+        ``ENDO``, ``EPI`` or ``BASE``.
+    axis : LongAxis
+    endo_apex, epi_apex : ndarray (3,), mm
+        Apical poles of the fitted endocardial and epicardial surfaces: the apical end of the
+        cavity and the apex of the wall.
+    quality : dict
+        Mesh-quality statistics (name -> value).
+    """
+
+    points: np.ndarray
+    tets: np.ndarray
+    faces: np.ndarray
+    face_tags: np.ndarray
+    axis: LongAxis
+    endo_apex: np.ndarray
+    epi_apex: np.ndarray
+    quality: dict = field(default_factory=dict)
+
+    def face_nodes(self, tag: int) -> np.ndarray:
+        """Sorted unique node indices on the boundary faces with this tag."""
+        return np.unique(self.faces[self.face_tags == tag])
