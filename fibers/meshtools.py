@@ -1,0 +1,49 @@
+"""Small vectorised helpers on tetrahedral meshes, shared by the mesh stage and the tests."""
+
+from __future__ import annotations
+
+import numpy as np
+
+# Local faces of a tetrahedron (a, b, c, d), each listed so that, for a positively oriented
+# tetrahedron, its right-hand normal points away from the opposite vertex.
+_LOCAL_FACES = np.array([[1, 2, 3], [0, 3, 2], [0, 1, 3], [0, 2, 1]])
+
+
+def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
+    """Signed volumes (M,) in mm^3; positive when (b-a, c-a, d-a) is right-handed."""
+    a, b, c, d = (points[tets[:, k]] for k in range(4))
+    return np.einsum("ij,ij->i", np.cross(b - a, c - a), d - a) / 6.0
+
+
+def orient_positive(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
+    """Return a copy of ``tets`` with every element positively oriented."""
+    tets = np.array(tets, dtype=np.int64, copy=True)
+    flip = signed_volumes(points, tets) < 0
+    tets[flip, 2], tets[flip, 3] = tets[flip, 3], tets[flip, 2].copy()
+    return tets
+
+
+def boundary_faces(tets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Boundary triangles of a positively oriented tetrahedral mesh.
+
+    Returns
+    -------
+    faces : ndarray (F, 3) int64
+        Triangles that belong to exactly one tetrahedron, ordered so their normal points out.
+    owner : ndarray (F,) int64
+        Index of the tetrahedron each face belongs to.
+    """
+    all_faces = tets[:, _LOCAL_FACES].reshape(-1, 3)
+    key = np.sort(all_faces, axis=1)
+    _, first, counts = np.unique(key, axis=0, return_index=True, return_counts=True)
+    once = first[counts == 1]
+    once.sort()
+    return all_faces[once].astype(np.int64), (once // 4).astype(np.int64)
+
+
+def triangle_normals(points: np.ndarray, faces: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Unit normals (F, 3) and areas (F,) mm^2 of triangles, right-hand rule."""
+    a, b, c = (points[faces[:, k]] for k in range(3))
+    n = np.cross(b - a, c - a)
+    area2 = np.linalg.norm(n, axis=1)
+    return n / np.maximum(area2, 1e-300)[:, None], 0.5 * area2
