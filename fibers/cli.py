@@ -1,0 +1,148 @@
+"""Command line: a thin layer over the Python API (DESIGN.md section 3.3)."""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import tempfile
+import traceback
+from dataclasses import replace
+from pathlib import Path
+
+from fibers.errors import InputError
+
+log = logging.getLogger("fibers")
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="fibers",
+        description="Build a left-ventricular wall mesh with cardiac coordinates, rule-based fibers, "
+                    "17 segments and sample-point pools from a short-axis stack. Research use only; "
+                    "not a medical device.")
+    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    def build_options(q):
+        q.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
+        q.add_argument("--mesh-size", type=float, help="target tetrahedron edge length, mm")
+        q.add_argument("--seed", type=int, help="seed of the sample-point pools")
+        q.add_argument("--no-report", action="store_true", help="skip the report")
+        q.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    b = sub.add_parser("build", help="build a case file")
+    b.add_argument("case", type=Path, help="case file (TOML)")
+    build_options(b)
+    d = sub.add_parser("demo", help="write the synthetic case of our own and build it")
+    build_options(d)
+    d.add_argument("--labelmap", action="store_true", help="give the synthetic subject as a label map (NIfTI)")
+    r = sub.add_parser("report", help="re-draw the report of a finished build")
+    r.add_argument("folder", type=Path)
+    r.add_argument("--debug", action="store_true")
+    v = sub.add_parser("view", help="open a finished build in an interactive 3-D window")
+    v.add_argument("folder", type=Path)
+    v.add_argument("--debug", action="store_true")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    _logging()
+    try:
+        return _dispatch(args)
+    except InputError as err:
+        if args.debug:
+            traceback.print_exc()
+        print(f"error: {err}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("error: interrupted; nothing was written", file=sys.stderr)
+        return 130
+    except Exception as err:  # a bug of ours: say so plainly, details on request
+        if args.debug:
+            traceback.print_exc()
+        print(f"error: internal error ({type(err).__name__}: {err}); nothing was written. "
+              f"Run again with --debug and report the traceback", file=sys.stderr)
+        return 1
+
+
+def _logging() -> None:
+    if not log.handlers:
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter("fibers: %(message)s"))
+        log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    log.propagate = False
+
+
+def _dispatch(args) -> int:
+    from fibers import pipeline
+    from fibers.io.case import read_case
+
+    if args.command == "build":
+        case = _override(read_case(args.case), args)
+        pipeline.build(case, args.out, report=not args.no_report)
+        return 0
+    if args.command == "demo":
+        return _demo(args)
+    if args.command == "report":
+        from fibers import report
+
+        report.redraw(args.folder)
+        return 0
+    if args.command == "view":
+        from fibers import report
+
+        return report.view(args.folder)
+    raise AssertionError(args.command)
+
+
+def _override(case, args):
+    values = {k: dict(v) for k, v in case.values.items()}
+    if args.mesh_size is not None:
+        if not 0.3 <= args.mesh_size <= 10.0:
+            raise InputError(f"--mesh-size {args.mesh_size:g}: must lie between 0.3 and 10 mm")
+        values["mesh"]["size"] = args.mesh_size
+        case = replace(case, mesh_size=args.mesh_size)
+    if args.seed is not None:
+        if args.seed < 0:
+            raise InputError(f"--seed {args.seed}: must be 0 or more")
+        values["pools"]["seed"] = args.seed
+        case = replace(case, pools=replace(case.pools, seed=args.seed))
+    return replace(case, values=values)
+
+
+def _demo(args) -> int:
+    from fibers import pipeline, synthetic
+    from fibers.io import case as case_io
+    from fibers.io.contours import write_contours
+
+    lv = synthetic.demo_subject()
+    with tempfile.TemporaryDirectory(prefix="fibers-demo-") as tmp:
+        tmp = Path(tmp)
+        include = {}
+        if args.labelmap:
+            from fibers import phantom
+            from fibers.io.labelmap import write_labelmap
+
+            labels, affine = phantom.voxelise(lv)
+            write_labelmap(tmp / "labelmap.nii.gz", labels, affine)
+            text = case_io.case_text(landmarks=None).replace('contours = "contours.csv"', 'labelmap = "labelmap.nii.gz"')
+            include["input/labelmap.nii.gz"] = tmp / "labelmap.nii.gz"
+        else:
+            contours, _ = lv.sample_stack(spacing=8.0, point_spacing=1.5, noise=0.4, shift=2.0, seed=11)
+            write_contours(tmp / "contours.csv", contours)
+            text = case_io.case_text(landmarks=lv.landmarks())
+            include["input/contours.csv"] = tmp / "contours.csv"
+        (tmp / "case.toml").write_text(text)
+        include["input/case.toml"] = tmp / "case.toml"
+        log.info("demo: synthetic left ventricle, %.0f mL cavity, %.0f mL wall (truth)",
+                 lv.volumes_ml()["cavity_ml"], lv.volumes_ml()["myocardium_ml"])
+        case = _override(case_io.read_case(tmp / "case.toml"), args)
+        pipeline.build(case, args.out, report=not args.no_report, include=include)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

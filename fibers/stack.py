@@ -1,0 +1,291 @@
+"""Stage 1: check a short-axis contour stack, order it from base to apex and align its slices.
+
+The long axis is taken as the stack normal (the mean normal of the slice planes): short-axis
+slices are planned normal to the ventricle's long axis, and the normal is not disturbed by the
+in-plane breath-hold shifts that corrupt slice centroids. Its sense (apex to base) is fixed by
+which end of the stack has the larger contours and the endocardial contours.
+
+Breath-hold shifts are removed by fitting a smooth centreline (a polynomial in height, quadratic
+for six slices or more, else straight) through the epicardial centroids and moving each slice
+in its plane onto it.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+from fibers.errors import InputError
+from fibers.types import LongAxis, RawContours, SliceContours, Stack
+
+log = logging.getLogger(__name__)
+
+MIN_POINTS = 6               # fewer points cannot describe a closed contour
+MAX_TILT_DEG = 10.0          # "parallel within a few degrees" (DESIGN 3.1), with room for noise
+MAX_OUT_OF_PLANE_MM = 2.0    # RMS distance of a slice's points from its plane
+MIN_SLICE_GAP_MM = 1.0       # closer than this, two slices are the same plane
+MIN_ENDO_SLICES = 3
+MIN_EXTENT_MM = 20.0
+EPI_RADIUS_MM = (5.0, 120.0)  # plausible epicardial radius in mm; outside, the units are wrong
+
+
+def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
+    """Check, order and align a contour stack.
+
+    Parameters
+    ----------
+    contours : RawContours
+        Points as read, any slice order, either winding.
+    align_slices : bool
+        Remove in-plane breath-hold shifts by fitting a smooth centreline.
+
+    Returns
+    -------
+    Stack
+        Slices ordered from base to apex, contours counter-clockwise about the long axis
+        (apex to base), with the shift applied to each slice.
+
+    Raises
+    ------
+    InputError
+        On too few points, self-crossing or non-planar contours, duplicate or tilted slices, an
+        endocardium outside its epicardium, a stack too short, or coordinates not in mm.
+    """
+    src = contours.source
+    groups = _group(contours)
+    ids = sorted({k for _, k in groups})
+
+    # units: an LV's epicardial radius is tens of millimetres
+    epi_radii = [np.linalg.norm(p - p.mean(0), axis=1).mean() for (s, _), (p, _l) in groups.items() if s == "epi"]
+    if not epi_radii:
+        raise InputError(f"{src}: no epicardial contour found; every slice needs an 'epi' contour")
+    typical = float(np.median(epi_radii))
+    if typical < EPI_RADIUS_MM[0] or typical > EPI_RADIUS_MM[1]:
+        guess = ("metres (multiply by 1000)" if typical < 0.5 else "centimetres (multiply by 10)"
+                 if typical < EPI_RADIUS_MM[0] else "micrometres or voxels")
+        raise InputError(
+            f"{src}: the typical epicardial radius is {typical:.3g}, not the 15-50 mm of a left "
+            f"ventricle; the coordinates look like {guess}: give x, y, z in mm")
+
+    for k in ids:
+        if ("epi", k) not in groups:
+            line = groups[("endo", k)][1][0]
+            raise InputError(f"{src}, line {line}, slice {k}: an endocardial contour but no epicardial one; add the 'epi' contour or drop the slice")
+
+    # slice planes and the stack normal
+    normals, centres = {}, {}
+    for k in ids:
+        pts = np.concatenate([groups[(s, k)][0] for s in ("endo", "epi") if (s, k) in groups])
+        centre = pts.mean(0)
+        _, sv, vt = np.linalg.svd(pts - centre, full_matrices=False)
+        off = sv[2] / np.sqrt(len(pts))
+        if off > MAX_OUT_OF_PLANE_MM:
+            raise InputError(f"{src}, slice {k}: points lie {off:.1f} mm (RMS) off a plane; each slice must be one short-axis plane")
+        normals[k], centres[k] = vt[2], centre
+    ref = normals[ids[0]]
+    for k in ids:
+        if normals[k] @ ref < 0:
+            normals[k] = -normals[k]
+    if len(ids) < 2:
+        raise InputError(f"{src}: only {len(ids)} slice; a wall needs at least {MIN_ENDO_SLICES} slices with both contours")
+    axis = np.mean([normals[k] for k in ids], axis=0)
+    axis /= np.linalg.norm(axis)
+    for _ in range(2):  # re-estimate without the worst slice's pull
+        tilts = {k: np.degrees(np.arccos(np.clip(abs(normals[k] @ axis), -1, 1))) for k in ids}
+        good = [k for k in ids if tilts[k] <= MAX_TILT_DEG] or ids
+        axis = np.mean([normals[k] for k in good], axis=0)
+        axis /= np.linalg.norm(axis)
+    tilts = {k: np.degrees(np.arccos(np.clip(abs(normals[k] @ axis), -1, 1))) for k in ids}
+    worst = max(ids, key=lambda k: tilts[k])
+    if tilts[worst] > MAX_TILT_DEG:
+        raise InputError(
+            f"{src}, slice {worst}: the slice plane is tilted {tilts[worst]:.0f} degrees from the "
+            f"rest of the stack; all slices must be parallel short-axis planes (within {MAX_TILT_DEG:.0f} degrees)")
+
+    height = {k: float(centres[k] @ axis) for k in ids}
+    order = sorted(ids, key=lambda k: height[k])
+    gaps = np.diff([height[k] for k in order])
+    if gaps.size and gaps.min() < MIN_SLICE_GAP_MM:
+        j = int(np.argmin(gaps))
+        a, b = order[j], order[j + 1]
+        raise InputError(
+            f"{src}, slices {a} and {b}: the two slices lie {gaps[j]:.2f} mm apart, in the same "
+            f"plane; remove the duplicate slice")
+
+    # sense of the axis: base is the end with endocardial contours and larger epicardia
+    has_endo = np.array([("endo", k) in groups for k in order])
+    epi_area = np.array([_area2d(groups[("epi", k)][0], axis) for k in order])
+    n3 = max(1, len(order) // 3)
+    score = (epi_area[-n3:].mean() - epi_area[:n3].mean()) / max(epi_area.mean(), 1e-9)
+    score += has_endo[-n3:].mean() - has_endo[:n3].mean()
+    if score < 0:
+        axis = -axis
+        order = order[::-1]
+        has_endo = has_endo[::-1]
+    # now `order` runs apex -> base; flip to base -> apex
+    order = order[::-1]
+    has_endo = has_endo[::-1]
+
+    n_endo = int(has_endo.sum())
+    if n_endo < MIN_ENDO_SLICES:
+        raise InputError(f"{src}: only {n_endo} slice(s) show the endocardium; a wall needs at least {MIN_ENDO_SLICES}")
+    last_endo = int(np.nonzero(has_endo)[0].max())
+    if not has_endo[: last_endo + 1].all():
+        k = order[int(np.nonzero(~has_endo[: last_endo + 1])[0][0])]
+        raise InputError(
+            f"{src}, slice {k}: no endocardial contour on a slice between slices that have one; "
+            f"only the most apical slices may lack it")
+    base_h = height[order[0]] if axis @ normals[order[0]] > 0 else height[order[0]]
+    base_h = float(centres[order[0]] @ axis)
+    extent = base_h - float(centres[order[-1]] @ axis)
+    if extent < MIN_EXTENT_MM:
+        raise InputError(f"{src}: the stack spans only {extent:.1f} mm from base to apex; a wall needs at least {MIN_EXTENT_MM:.0f} mm")
+
+    # per-slice contour checks, in the plane of the stack
+    e1 = _perpendicular(axis)
+    e2 = np.cross(axis, e1)
+    plane = np.stack([e1, e2])
+    slices_2d = {}
+    for k in order:
+        entry = {}
+        for s in ("epi", "endo"):
+            if (s, k) not in groups:
+                continue
+            pts, lines = groups[(s, k)]
+            xy = pts @ plane.T
+            if _signed_area(xy) < 0:
+                pts, xy, lines = pts[::-1], xy[::-1], lines[::-1]
+            cross = _self_crossing(xy)
+            if cross is not None:
+                raise InputError(
+                    f"{src}, line {lines[cross]}, slice {k}: the {s}cardial contour crosses itself "
+                    f"near this point; redraw the contour as one simple closed curve")
+            entry[s] = (pts, xy, lines)
+        if "endo" in entry:
+            inside = _inside_polygon(entry["endo"][1], entry["epi"][1])
+            if not inside.all():
+                outside_epi = _inside_polygon(entry["epi"][1], entry["endo"][1]).mean() > 0.5
+                j = int(np.argmin(inside))
+                if outside_epi:
+                    raise InputError(
+                        f"{src}, slice {k}: the endocardial contour encloses the epicardial one; "
+                        f"are the labels 'endo' and 'epi' swapped?")
+                raise InputError(
+                    f"{src}, line {entry['endo'][2][j]}, slice {k}: the endocardial contour crosses "
+                    f"or leaves its epicardial contour; the endocardium must lie inside the epicardium")
+        slices_2d[k] = entry
+
+    # smooth centreline through the epicardial centroids
+    hs = np.array([float(centres[k] @ axis) for k in order])
+    cents = np.array([_centroid2d(slices_2d[k]["epi"][1]) for k in order])
+    degree = 2 if len(order) >= 6 else 1
+    z = hs - hs.mean()
+    fit = np.polynomial.polynomial.polyfit(z, cents, degree)
+    line = np.polynomial.polynomial.polyval(z, fit).T
+    shifts2d = (line - cents) if align_slices else np.zeros_like(cents)
+    # the straight axis: a line through the centreline's straight part
+    straight = np.polynomial.polynomial.polyfit(z, cents, 1)
+    base_xy = np.polynomial.polynomial.polyval(hs[0] - hs.mean(), straight)
+    if not align_slices:
+        base_xy = cents[0]
+    base_centre = base_xy @ plane + base_h * axis
+
+    out = []
+    for j, k in enumerate(order):
+        shift = shifts2d[j] @ plane
+        entry = slices_2d[k]
+        epi = entry["epi"][0] + shift
+        endo = entry["endo"][0] + shift if "endo" in entry else None
+        out.append(SliceContours(slice_id=int(k), height=float(base_h - hs[j]), epi=epi, endo=endo,
+                                 shift=shift))
+    if align_slices:
+        mags = np.linalg.norm(shifts2d, axis=1)
+        log.info("aligned %d slices: breath-hold shifts up to %.1f mm (mean %.1f mm)", len(order), mags.max(), mags.mean())
+    warnings = []
+    big = np.linalg.norm(shifts2d, axis=1).max() if align_slices else 0.0
+    if big > 8.0:
+        warnings.append(f"in-plane slice shifts up to {big:.1f} mm were removed; check the slices belong to one breath-hold series")
+    return Stack(slices=tuple(out), axis=LongAxis(base_centre=base_centre, direction=axis, reference=e1),
+                 source=src, warnings=tuple(warnings))
+
+
+def _group(contours: RawContours) -> dict:
+    """(structure, slice) -> (points (n, 3), line numbers (n,)), closing duplicate removed."""
+    src = contours.source
+    key = np.char.add(np.char.add(contours.structure.astype(str), ":"), contours.slice_id.astype(str))
+    _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+    groups = {}
+    for g, f in enumerate(first):
+        rows = np.nonzero(inverse == g)[0]
+        pts, lines = contours.points[rows], contours.line[rows]
+        scale = np.ptp(pts, axis=0).max() if len(pts) > 1 else 0.0
+        if len(pts) > 1 and np.linalg.norm(pts[0] - pts[-1]) <= 1e-6 * max(scale, 1e-12):
+            pts, lines = pts[:-1], lines[:-1]
+        step = np.linalg.norm(np.diff(pts, axis=0), axis=1)
+        keep = np.concatenate([[True], step > 1e-9 * max(scale, 1e-12)])  # drop repeated points
+        pts, lines = pts[keep], lines[keep]
+        s, k = str(contours.structure[f]), int(contours.slice_id[f])
+        if len(pts) < MIN_POINTS:
+            raise InputError(
+                f"{src}, line {contours.line[rows[0]]}, slice {k}: the {s} contour has only "
+                f"{len(pts)} distinct points; a closed contour needs at least {MIN_POINTS}")
+        groups[(s, k)] = (pts, lines)
+    return groups
+
+
+def _perpendicular(axis: np.ndarray) -> np.ndarray:
+    """A unit vector normal to ``axis``, from the world axis least aligned with it."""
+    e = np.eye(3)[int(np.argmin(np.abs(axis)))]
+    v = e - (e @ axis) * axis
+    return v / np.linalg.norm(v)
+
+
+def _signed_area(xy: np.ndarray) -> float:
+    x, y = xy[:, 0], xy[:, 1]
+    return 0.5 * float(np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y))
+
+
+def _area2d(points: np.ndarray, axis: np.ndarray) -> float:
+    return abs(_signed_area(points @ np.stack([_perpendicular(axis), np.cross(axis, _perpendicular(axis))]).T))
+
+
+def _centroid2d(xy: np.ndarray) -> np.ndarray:
+    """Area centroid of a simple polygon (shoelace formula)."""
+    x, y = xy[:, 0], xy[:, 1]
+    xn, yn = np.roll(x, -1), np.roll(y, -1)
+    c = x * yn - xn * y
+    a = c.sum() / 2
+    return np.array([((x + xn) * c).sum(), ((y + yn) * c).sum()]) / (6 * a)
+
+
+def _self_crossing(xy: np.ndarray) -> int | None:
+    """Index of a point where the closed polygon crosses itself, or None (all segment pairs)."""
+    p, q = xy, np.roll(xy, -1, axis=0)
+    n = len(xy)
+    d1 = q - p
+    # orientation tests for every pair (i, j): does segment j straddle segment i and vice versa
+    def orient(a, b, c):
+        return (b[..., 0] - a[..., 0]) * (c[..., 1] - a[..., 1]) - (b[..., 1] - a[..., 1]) * (c[..., 0] - a[..., 0])
+    pi, qi = p[:, None, :], q[:, None, :]
+    pj, qj = p[None, :, :], q[None, :, :]
+    o1, o2 = orient(pi, qi, pj), orient(pi, qi, qj)
+    o3, o4 = orient(pj, qj, pi), orient(pj, qj, qi)
+    hit = (o1 * o2 < 0) & (o3 * o4 < 0)
+    idx = np.arange(n)
+    near = (np.abs(idx[:, None] - idx[None, :]) <= 1) | (np.abs(idx[:, None] - idx[None, :]) == n - 1)
+    hit &= ~near
+    if not hit.any():
+        return None
+    del d1
+    return int(np.nonzero(hit.any(axis=1))[0][0])
+
+
+def _inside_polygon(points: np.ndarray, polygon: np.ndarray) -> np.ndarray:
+    """Crossing-number test of points (K, 2) against a closed polygon (n, 2)."""
+    a, b = polygon, np.roll(polygon, -1, axis=0)
+    px, py = points[:, 0:1], points[:, 1:2]
+    straddle = (a[None, :, 1] > py) != (b[None, :, 1] > py)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xcross = a[None, :, 0] + (py - a[None, :, 1]) * (b[None, :, 0] - a[None, :, 0]) / (b[None, :, 1] - a[None, :, 1])
+    return (np.sum(straddle & (px < xcross), axis=1) % 2) == 1
