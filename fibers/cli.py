@@ -29,7 +29,7 @@ def _parser() -> argparse.ArgumentParser:
         q.add_argument("--mesh-size", type=float, help="target tetrahedron edge length, mm")
         q.add_argument("--seed", type=int, help="seed of the sample-point pools")
         q.add_argument("--no-report", action="store_true", help="skip the report")
-        q.add_argument("--debug", action="store_true", help="show tracebacks")
+        q.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
 
     b = sub.add_parser("build", help="build a case file")
     b.add_argument("case", type=Path, help="case file (TOML)")
@@ -39,10 +39,10 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--labelmap", action="store_true", help="give the synthetic subject as a label map (NIfTI)")
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
-    r.add_argument("--debug", action="store_true")
+    r.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
     v = sub.add_parser("view", help="open a finished build in an interactive 3-D window")
     v.add_argument("folder", type=Path)
-    v.add_argument("--debug", action="store_true")
+    v.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
     return p
 
 
@@ -67,9 +67,19 @@ def main(argv: list[str] | None = None) -> int:
         return 1
 
 
+class _Stderr(logging.Handler):
+    """Progress lines to whatever sys.stderr is at the time (main() may run many times)."""
+
+    def emit(self, record):
+        try:
+            sys.stderr.write(self.format(record) + "\n")
+        except (ValueError, OSError):
+            pass
+
+
 def _logging() -> None:
-    if not log.handlers:
-        handler = logging.StreamHandler(sys.stderr)
+    if not any(isinstance(h, _Stderr) for h in log.handlers):
+        handler = _Stderr()
         handler.setFormatter(logging.Formatter("fibers: %(message)s"))
         log.addHandler(handler)
     log.setLevel(logging.INFO)

@@ -246,6 +246,19 @@ def _match_tags(faces, tri, n_points):
     return ours_tag[order][pos]
 
 
+def volumes_mm3(wall: WallMesh) -> tuple[float, float]:
+    """Wall volume (sum of tetrahedra) and cavity volume (endocardium closed by the base plane).
+
+    The cavity volume is the divergence theorem over the endocardial faces with the origin in
+    the base plane, where the cap's contribution x . n vanishes.
+    """
+    rel = wall.points - wall.axis.base_centre
+    endo = wall.faces[wall.face_tags == ENDO]
+    a, b, c = (rel[endo[:, k]] for k in range(3))
+    cavity = -np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0
+    return float(meshtools.signed_volumes(wall.points, wall.tets).sum()), float(cavity)
+
+
 def tet_quality(points: np.ndarray, tets: np.ndarray) -> dict:
     """Quality statistics: volume, radius ratio (1 for a regular tetrahedron) and dihedral angles."""
     vol = meshtools.signed_volumes(points, tets)

@@ -13,12 +13,12 @@ import time
 import uuid
 import warnings
 from contextlib import contextmanager
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from fibers import architecture, coordinates, mesh as mesh_stage, meshtools, pools as pool_stage
+from fibers import architecture, coordinates, mesh as mesh_stage, pools as pool_stage
 from fibers import segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
 from fibers.errors import InputError
@@ -111,12 +111,8 @@ def _contour_box(contours: RawContours, margin: float) -> Box:
 def summarise(result: Result) -> dict:
     """The manifest's summary: volumes, mass, counts, quality and fit residuals."""
     wall = result.mesh
-    vol = meshtools.signed_volumes(wall.points, wall.tets)
-    rel = wall.points - wall.axis.base_centre  # origin in the base plane: the cap adds nothing
-    endo = wall.faces[wall.face_tags == ENDO]
-    a, b, c = (rel[endo[:, k]] for k in range(3))
-    cavity = -np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0
-    myo_ml = float(vol.sum()) / 1000.0
+    myo, cavity = mesh_stage.volumes_mm3(wall)
+    myo_ml = myo / 1000.0
     res = result.surfaces.residuals
     per_structure = {s: [r for r in res if r["structure"] == s] for s in ("endo", "epi")}
     height = (wall.axis.base_centre - wall.epi_apex) @ wall.axis.direction
@@ -193,10 +189,13 @@ def _read_inputs(case):
     from fibers.io import labelmap as labelmap_io
 
     labels, affine = labelmap_io.read_labelmap(case.labelmap, frame=case.frame)
-    values = labelmap.LabelValues(**case.labels)
+    labels_cfg = dict(case.labels)
+    if labels_cfg.get("rv") == 0:  # rv = 0 in the case file: the map has no RV label
+        labels_cfg["rv"] = None
+    values = labelmap.LabelValues(**labels_cfg)
     contours, found, box = labelmap.contours_from_labelmap(labels, affine, values, source=case.labelmap.name)
-    landmarks = found if found.present else case.landmarks
-    box = replace(box) if box is not None else None
+    # the user's explicit points win over the ones read off the label map
+    landmarks = case.landmarks if case.landmarks.present else found
     return contours, landmarks, box, [_provenance(case.labelmap)]
 
 

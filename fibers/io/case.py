@@ -27,7 +27,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     "input.labels": {
         "cavity": ("int", 1, 0, 65535, "label value of the left-ventricular cavity"),
         "wall": ("int", 2, 0, 65535, "label value of the left-ventricular myocardium"),
-        "rv": ("int", 3, 0, 65535, "label value of the right-ventricular cavity (optional)"),
+        "rv": ("int", 3, 0, 65535, "label value of the right-ventricular cavity; 0 when the map has none"),
     },
     "landmarks": {
         "rv_insertion_anterior": ("point", None, None, None, "anterior RV insertion point, mm"),

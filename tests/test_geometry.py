@@ -1,0 +1,115 @@
+"""Contours to wall mesh: volumes, base plane and invariances against closed forms."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from fibers import mesh, stack, surfaces, synthetic
+from fibers.types import BASE, ENDO, EPI, RawContours
+
+SIZE = 2.5  # mm; coarse enough for speed, fine enough that the mesh error is far below 3 %
+
+
+def _build(contours, size=SIZE):
+    st = stack.check_stack(contours)
+    sf = surfaces.fit_surfaces(st)
+    return st, sf, mesh.build_mesh(sf, size=size)
+
+
+def _volumes_ml(wall):
+    myo, cav = mesh.volumes_mm3(wall)
+    return myo / 1000.0, cav / 1000.0
+
+
+@pytest.fixture(scope="module")
+def exact_oblique():
+    lv = synthetic.spheroid_shell(seed=4)
+    contours, _ = lv.sample_stack(spacing=8.0, seed=2)
+    return lv, contours, _build(contours)
+
+
+def test_exact_shell_volumes_match_closed_form(exact_oblique):
+    # Closed form: volume of a spheroid cap below a plane (CRC Standard Mathematical Tables),
+    # SyntheticLV.volumes_ml. Issue #2 asks for 3 %.
+    lv, _, (_, _, wall) = exact_oblique
+    truth = lv.volumes_ml()
+    myo, cav = _volumes_ml(wall)
+    assert abs(myo / truth["myocardium_ml"] - 1) < 0.03
+    assert abs(cav / truth["cavity_ml"] - 1) < 0.03
+
+
+def test_oblique_frame_same_volumes_and_base_normal(exact_oblique):
+    # Rigid motion leaves volumes unchanged (elementary geometry); the base plane is normal to
+    # the true long axis within 2 degrees (issue #2).
+    lv, _, (st, _, wall) = exact_oblique
+    upright = synthetic.spheroid_shell()
+    contours, _ = upright.sample_stack(spacing=8.0, seed=2)
+    myo0, cav0 = _volumes_ml(_build(contours)[2])
+    myo, cav = _volumes_ml(wall)
+    assert abs(myo / myo0 - 1) < 0.01 and abs(cav / cav0 - 1) < 0.01
+    angle = np.degrees(np.arccos(np.clip(st.axis.direction @ lv.long_axis, -1, 1)))
+    assert angle < 2.0
+    # the base faces are flat and normal to the true axis
+    base = wall.faces[wall.face_tags == BASE]
+    a, b, c = (wall.points[base[:, k]] for k in range(3))
+    n = np.cross(b - a, c - a)
+    n /= np.linalg.norm(n, axis=1, keepdims=True)
+    assert np.degrees(np.arccos(np.clip(n @ lv.long_axis, -1, 1))).max() < 2.0
+    heights = (wall.points[np.unique(base)] - st.axis.base_centre) @ st.axis.direction
+    assert np.abs(heights).max() < 1e-6
+
+
+def test_noisy_shifted_stack_volumes(exact_oblique):
+    # Noise 0.5 mm and breath-hold shifts of 2.5 mm: alignment and the smoothing fit keep
+    # the volumes within 3 % of the closed form (issue #2's held-out condition).
+    lv = synthetic.spheroid_shell(endo=(24.0, 55.0), epi=(33.0, 63.0), base_z=18.0, seed=9)
+    contours, shifts = lv.sample_stack(spacing=8.0, noise=0.5, shift=2.5, seed=5)
+    assert np.abs(shifts).max() > 1.0  # the shifts are really there
+    myo, cav = _volumes_ml(_build(contours)[2])
+    truth = lv.volumes_ml()
+    assert abs(myo / truth["myocardium_ml"] - 1) < 0.03
+    assert abs(cav / truth["cavity_ml"] - 1) < 0.03
+
+
+def test_winding_and_slice_order_do_not_matter(exact_oblique):
+    # Invariance (common practice): reversing every contour and shuffling the slices and their
+    # ids describes the same stack, so the result must not change.
+    lv, contours, (_, _, wall) = exact_oblique
+    rng = np.random.default_rng(0)
+    ids = np.unique(contours.slice_id)
+    new_id = dict(zip(ids, rng.permutation(ids) * 7 + 3))
+    rows = []
+    for k in rng.permutation(ids):
+        for s in ("epi", "endo"):
+            sel = np.nonzero((contours.slice_id == k) & (contours.structure == s))[0]
+            rows.append(sel[::-1])
+    rows = np.concatenate(rows)
+    shuffled = RawContours(structure=contours.structure[rows],
+                           slice_id=np.array([new_id[k] for k in contours.slice_id[rows]]),
+                           points=contours.points[rows], line=np.arange(2, len(rows) + 2))
+    myo0, cav0 = _volumes_ml(wall)
+    myo, cav = _volumes_ml(_build(shuffled)[2])
+    assert abs(myo / myo0 - 1) < 1e-6 and abs(cav / cav0 - 1) < 1e-6
+
+
+def test_mesh_is_valid_and_tagged(exact_oblique):
+    # Invariants: positive volumes, every boundary face tagged, closed boundary (Euler
+    # characteristic of a sphere-like surface is 2: V - E + F = 2).
+    _, _, (_, _, wall) = exact_oblique
+    assert wall.quality["inverted"] == 0 and wall.quality["radius_ratio_min"] > 0.05
+    assert set(np.unique(wall.face_tags)) == {ENDO, EPI, BASE}
+    faces = wall.faces
+    edges = np.unique(np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1), axis=0)
+    assert len(np.unique(faces)) - len(edges) + len(faces) == 2
+
+
+def test_apex_extrapolated_beyond_last_slice(exact_oblique):
+    # The apex lies beyond the last contour and near the true apex of the spheroid
+    # (exact body: apex at the polar half-axis below the centre).
+    lv, _, (st, _, wall) = exact_oblique
+    true_epi_apex = lv.to_world(np.array([[0.0, 0.0, -lv.epi[1]]]))[0]
+    true_endo_apex = lv.to_world(np.array([[0.0, 0.0, -lv.endo[1]]]))[0]
+    assert np.linalg.norm(wall.epi_apex - true_epi_apex) < 1.5
+    assert np.linalg.norm(wall.endo_apex - true_endo_apex) < 2.5
+    assert (st.axis.base_centre - wall.epi_apex) @ st.axis.direction > st.slices[-1].height
