@@ -1,0 +1,298 @@
+"""Linear (P1) finite elements on tetrahedra: gradients, stiffness, Dirichlet solves, recovery.
+
+Everything is vectorised over elements. The helpers chain: ``stiffness`` builds the Laplace
+matrix, ``solve_dirichlet`` condenses the prescribed nodes and solves the rest by conjugate
+gradients preconditioned with algebraic multigrid (pyamg), ``cell_gradient`` and
+``nodal_gradient`` turn a nodal field into directions.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from fibers.errors import InputError
+
+log = logging.getLogger(__name__)
+
+
+def tet_gradients(points: np.ndarray, tets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Volumes and barycentric shape-function gradients of every tetrahedron.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3) float64, mm
+    tets : ndarray (M, 4) int
+
+    Returns
+    -------
+    volumes : ndarray (M,), mm^3
+        Unsigned volumes.
+    grads : ndarray (M, 4, 3), 1/mm
+        ``grads[m, k]`` is the (constant) gradient of the barycentric coordinate of vertex ``k``
+        in element ``m``; the four gradients of one element sum to zero.
+
+    Raises
+    ------
+    InputError
+        If an element has (numerically) zero volume.
+    """
+    points = np.asarray(points, dtype=np.float64)
+    tets = np.asarray(tets)
+    x0 = points[tets[:, 0]]
+    e1 = points[tets[:, 1]] - x0
+    e2 = points[tets[:, 2]] - x0
+    e3 = points[tets[:, 3]] - x0
+    # Rows of the inverse Jacobian are the cofactor cross products divided by the determinant,
+    # which avoids a batched LAPACK inverse.
+    c23 = np.cross(e2, e3)
+    c31 = np.cross(e3, e1)
+    c12 = np.cross(e1, e2)
+    det = np.einsum("ij,ij->i", e1, c23)
+    scale = np.einsum("ij,ij->i", e1, e1) ** 1.5
+    bad = np.abs(det) <= 1e-12 * np.maximum(scale, 1e-300)
+    if np.any(bad):
+        first = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"mesh has {int(bad.sum())} tetrahedra of zero volume (first: element {first}); "
+            "re-mesh with a different size or check the surfaces")
+    grads = np.empty((len(tets), 4, 3))
+    inv_det = 1.0 / det
+    grads[:, 1] = c23 * inv_det[:, None]
+    grads[:, 2] = c31 * inv_det[:, None]
+    grads[:, 3] = c12 * inv_det[:, None]
+    grads[:, 0] = -(grads[:, 1] + grads[:, 2] + grads[:, 3])
+    return np.abs(det) / 6.0, grads
+
+
+def stiffness(points: np.ndarray, tets: np.ndarray) -> sp.csr_matrix:
+    """Assemble the P1 Laplace (stiffness) matrix ``K_ij = integral grad(phi_i) . grad(phi_j)``.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3) float64, mm
+    tets : ndarray (M, 4) int
+
+    Returns
+    -------
+    scipy.sparse.csr_matrix (N, N), mm
+        Symmetric positive semi-definite; its rows sum to zero.
+    """
+    n = len(points)
+    vol, grads = tet_gradients(points, tets)
+    local = np.matmul(grads, grads.transpose(0, 2, 1))
+    local *= vol[:, None, None]
+    index_type = np.int32 if n < 2**31 - 1 else np.int64
+    t = np.asarray(tets, dtype=index_type)
+    rows = np.broadcast_to(t[:, :, None], local.shape).ravel()
+    cols = np.broadcast_to(t[:, None, :], local.shape).ravel()
+    # One COO -> CSR conversion sums the duplicate entries in compiled code.
+    K = sp.coo_matrix((local.ravel(), (rows, cols)), shape=(n, n)).tocsr()
+    K.sort_indices()
+    return K
+
+
+def _amg_preconditioner(A: sp.csr_matrix):
+    import pyamg
+
+    ml = pyamg.smoothed_aggregation_solver(A, symmetry="symmetric", max_coarse=500)
+    return ml.aspreconditioner(cycle="V")
+
+
+def solve_dirichlet(K: sp.spmatrix, nodes: np.ndarray, values, *, rhs: np.ndarray | None = None,
+                    tol: float = 1e-10, maxiter: int = 500) -> np.ndarray:
+    """Solve ``K u = rhs`` with ``u[nodes] = values`` prescribed.
+
+    The prescribed rows and columns are condensed out; the remaining symmetric positive definite
+    system is solved by conjugate gradients with a smoothed-aggregation AMG preconditioner.
+
+    Parameters
+    ----------
+    K : sparse matrix (N, N)
+        Symmetric stiffness matrix, e.g. from :func:`stiffness`.
+    nodes : ndarray (D,) int
+        Prescribed nodes. A node listed twice must carry the same value both times.
+    values : float or ndarray (D,)
+        Prescribed values.
+    rhs : ndarray (N,), optional
+        Load vector; zero (the Laplace equation) when omitted.
+    tol : float
+        Relative residual ``|b - A x| / |b|`` of the condensed system to reach.
+    maxiter : int
+        Conjugate-gradient iteration limit.
+
+    Returns
+    -------
+    ndarray (N,)
+        The solution, equal to ``values`` on ``nodes``.
+
+    Raises
+    ------
+    ValueError
+        If no node is prescribed or a node is prescribed twice with different values.
+    RuntimeError
+        If conjugate gradients do not reach ``tol``.
+    """
+    K = sp.csr_matrix(K)
+    n = K.shape[0]
+    nodes = np.asarray(nodes, dtype=np.int64).ravel()
+    values = np.broadcast_to(np.asarray(values, dtype=np.float64), nodes.shape)
+    if nodes.size == 0:
+        raise ValueError("solve_dirichlet needs at least one prescribed node (the Laplace "
+                         "matrix is singular without one)")
+    fixed = np.zeros(n, dtype=bool)
+    u = np.zeros(n)
+    u[nodes] = values
+    if np.any(u[nodes] != values):
+        raise ValueError("solve_dirichlet: a node is prescribed twice with different values")
+    fixed[nodes] = True
+    free = np.flatnonzero(~fixed)
+    if free.size == 0:
+        return u
+    b = -(K @ u)[free] if rhs is None else (np.asarray(rhs, float) - K @ u)[free]
+    A = K[free][:, free]
+    b_norm = float(np.linalg.norm(b))
+    if b_norm == 0.0:
+        return u
+    M = _amg_preconditioner(A)
+    iterations = 0
+
+    def count(_):
+        nonlocal iterations
+        iterations += 1
+
+    x, info = spla.cg(A, b, rtol=tol, atol=0.0, maxiter=maxiter, M=M, callback=count)
+    residual = float(np.linalg.norm(b - A @ x)) / b_norm
+    # scipy's CG stops on the recursively updated residual; check the true one as well, with a
+    # little slack for its rounding.
+    if info != 0 or not np.isfinite(residual) or residual > 10 * tol:
+        raise RuntimeError(
+            f"conjugate gradients did not converge: relative residual {residual:.2e} after "
+            f"{iterations} iterations (target {tol:.0e}); check that every connected part of "
+            "the mesh has a prescribed node")
+    log.debug("CG+AMG: %d unknowns, %d iterations, relative residual %.1e", free.size,
+              iterations, residual)
+    u[free] = x
+    return u
+
+
+def cell_gradient(points: np.ndarray, tets: np.ndarray, u: np.ndarray, *,
+                  grads: np.ndarray | None = None) -> np.ndarray:
+    """Gradient of a P1 field in every element.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    tets : ndarray (M, 4) int
+    u : ndarray (N,)
+        Nodal values.
+    grads : ndarray (M, 4, 3), optional
+        Shape-function gradients from :func:`tet_gradients`, to skip recomputing them.
+
+    Returns
+    -------
+    ndarray (M, 3), units of ``u`` per mm
+    """
+    if grads is None:
+        _, grads = tet_gradients(points, tets)
+    return np.einsum("mk,mkj->mj", np.asarray(u, float)[tets], grads)
+
+
+def nodal_gradient(points: np.ndarray, tets: np.ndarray, u: np.ndarray, *,
+                   volumes: np.ndarray | None = None, grads: np.ndarray | None = None
+                   ) -> np.ndarray:
+    """Recovered nodal gradient: the volume-weighted mean of the element gradients around a node.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    tets : ndarray (M, 4) int
+    u : ndarray (N,)
+    volumes, grads : optional
+        Output of :func:`tet_gradients`, to skip recomputing it.
+
+    Returns
+    -------
+    ndarray (N, 3), units of ``u`` per mm
+        Zero at nodes that belong to no element.
+    """
+    if volumes is None or grads is None:
+        volumes, grads = tet_gradients(points, tets)
+    g = cell_gradient(points, tets, u, grads=grads)
+    return cell_to_nodes(tets, g, volumes, n_points=len(points))
+
+
+def cell_to_nodes(tets: np.ndarray, cell_values: np.ndarray, volumes: np.ndarray, *,
+                  n_points: int) -> np.ndarray:
+    """Volume-weighted average of cell values onto the nodes.
+
+    Parameters
+    ----------
+    tets : ndarray (M, 4) int
+    cell_values : ndarray (M,) or (M, C)
+    volumes : ndarray (M,), mm^3
+    n_points : int
+
+    Returns
+    -------
+    ndarray (N,) or (N, C)
+        Zero at nodes that belong to no element.
+    """
+    cell_values = np.asarray(cell_values, float)
+    flat = cell_values.reshape(len(tets), -1)
+    idx = np.asarray(tets).ravel()
+    w = np.repeat(volumes, 4)
+    weight = np.bincount(idx, weights=w, minlength=n_points)
+    out = np.stack([np.bincount(idx, weights=w * np.repeat(flat[:, c], 4), minlength=n_points)
+                    for c in range(flat.shape[1])], axis=1)
+    out /= np.where(weight > 0, weight, 1.0)[:, None]
+    return out.reshape((n_points,) + cell_values.shape[1:])
+
+
+def barycentric(points: np.ndarray, tets: np.ndarray, cells: np.ndarray, at: np.ndarray
+                ) -> np.ndarray:
+    """Barycentric coordinates of query points with respect to given elements.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    tets : ndarray (M, 4) int
+    cells : ndarray (K,) int
+        Element of each query point.
+    at : ndarray (K, 3), mm
+        Query points (inside their element for weights in [0, 1]; outside gives extrapolation).
+
+    Returns
+    -------
+    ndarray (K, 4)
+        Weights that sum to one; ``(weights[:, :, None] * points[tets[cells]]).sum(1) == at``.
+    """
+    t = np.asarray(tets)[np.asarray(cells)]
+    x0 = points[t[:, 0]]
+    J = np.stack([points[t[:, 1]] - x0, points[t[:, 2]] - x0, points[t[:, 3]] - x0], axis=2)
+    lam = np.linalg.solve(J, (np.asarray(at, float) - x0)[:, :, None])[:, :, 0]
+    return np.column_stack([1.0 - lam.sum(axis=1), lam])
+
+
+def interpolate(tets: np.ndarray, values: np.ndarray, cells: np.ndarray, weights: np.ndarray
+                ) -> np.ndarray:
+    """Evaluate a P1 field at points given by element and barycentric weights.
+
+    Parameters
+    ----------
+    tets : ndarray (M, 4) int
+    values : ndarray (N,) or (N, C)
+        Nodal values.
+    cells : ndarray (K,) int
+    weights : ndarray (K, 4)
+        From :func:`barycentric`.
+
+    Returns
+    -------
+    ndarray (K,) or (K, C)
+    """
+    v = np.asarray(values, float)[np.asarray(tets)[np.asarray(cells)]]
+    return np.einsum("kj,kj...->k...", weights, v)
