@@ -51,7 +51,7 @@ class Box:
 
     def sample(self, unit: np.ndarray) -> np.ndarray:
         """Map points of the unit cube (N, 3) into the box."""
-        return self.corner + np.asarray(unit, float) @ self.edges
+        return self.corner + np.einsum("...j,ji->...i", np.asarray(unit, float), self.edges)
 
     @property
     def volume(self) -> float:

@@ -200,7 +200,8 @@ def _angle_about_axis(points, centre, axis_dir, zero):
     """Angle (K,) in degrees in [-180, 180), right-handed about ``axis_dir``, 0 at ``zero``."""
     second = np.cross(axis_dir, zero)
     rel = np.asarray(points, float) - centre
-    deg = np.degrees(np.arctan2(rel @ second, rel @ zero))
+    deg = np.degrees(np.arctan2(np.einsum("ij,j->i", rel, second),
+                                np.einsum("ij,j->i", rel, zero)))
     # arctan2 returns (-180, 180]; move +180 to -180 to get the half-open range.
     return np.where(deg >= 180.0, deg - 360.0, deg)
 
@@ -210,8 +211,8 @@ def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
     tangential = g_long - np.einsum("ij,ij->i", g_long, e_rad)[:, None] * e_rad
     if scale is None:
         scale = float(np.median(np.linalg.norm(g_long, axis=1)))
-    axis_t = axis_dir - (e_rad @ axis_dir)[:, None] * e_rad
-    zero_t = zero - (e_rad @ zero)[:, None] * e_rad
+    axis_t = axis_dir - np.einsum("ij,j->i", e_rad, axis_dir)[:, None] * e_rad
+    zero_t = zero - np.einsum("ij,j->i", e_rad, zero)[:, None] * e_rad
     # Last resort, only where e_rad is parallel to both the axis and the zero direction (which
     # are orthogonal, so never both): any vector orthogonal to e_rad.
     other = np.cross(e_rad, zero)

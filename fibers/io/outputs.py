@@ -52,7 +52,11 @@ def cell_data(result) -> dict:
 
 
 def write_all(folder: Path, result) -> None:
-    """Write mesh.vtu, mesh.xdmf (+ .h5), mesh.msh, surfaces.vtp and the pools."""
+    """Write mesh.vtu, mesh.xdmf (+ .h5), mesh.msh, surfaces.vtp and the pools.
+
+    Uncompressed binary throughout: zlib compression tripled the writing time for files that
+    shrink by less than half.
+    """
     import meshio
 
     from fibers.io.pools import write_pools
@@ -60,7 +64,7 @@ def write_all(folder: Path, result) -> None:
     wall = result.mesh
     pdata, cdata = point_data(result), cell_data(result)
     meshio.Mesh(wall.points, [("tetra", wall.tets)], point_data=pdata,
-                cell_data={k: [v] for k, v in cdata.items()}).write(folder / "mesh.vtu")
+                cell_data={k: [v] for k, v in cdata.items()}).write(folder / "mesh.vtu", compression=None)
 
     # finite-element copies: the tetrahedra plus the tagged boundary triangles
     faces = wall.faces
@@ -68,7 +72,7 @@ def write_all(folder: Path, result) -> None:
     boundary = [np.zeros(len(wall.tets), np.int32), wall.face_tags.astype(np.int32)]
     padded = {k: [v, np.zeros((len(faces),) + v.shape[1:], v.dtype)] for k, v in cdata.items()}
     meshio.Mesh(wall.points, blocks, point_data=pdata,
-                cell_data={"boundary": boundary, **padded}).write(folder / "mesh.xdmf")
+                cell_data={"boundary": boundary, **padded}).write(folder / "mesh.xdmf", compression=None)
     phys = [np.full(len(wall.tets), WALL_TAG, np.int32), wall.face_tags.astype(np.int32)]
     msh = meshio.Mesh(wall.points, blocks, cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys})
     msh.field_data = {"wall": np.array([WALL_TAG, 3]),

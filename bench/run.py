@@ -1,0 +1,96 @@
+"""`make bench`: one table of stage times and ratios on the demo ventricle, in one run.
+
+For each mesh size the whole pipeline runs in a fresh subprocess (so its peak memory is its
+own); the FEM rows compare our assembly with scikit-fem's and our multigrid solve with scipy's
+direct solver on the same mesh, and the pool rows time point location and pool sampling of 10^6
+points on the ~500k mesh. Ratios > 1 mean ours is faster; "after / mesh" is the time of every
+stage after meshing (report excluded) over the meshing time (target <= 1 at ~500k).
+"""
+
+from __future__ import annotations
+
+import json
+import resource
+import subprocess
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+SIZES = {"~50k": 2.2, "~200k": 1.3, "~500k": 0.97, "~1M": 0.77}
+AFTER = ("segments", "coordinates", "architecture", "pools", "outputs")
+
+
+def one(size: float, with_pools_bench: bool) -> dict:
+    import shutil
+    import tempfile
+    import time
+    from dataclasses import replace
+
+    sys.path.insert(0, str(HERE))
+    from fem_bench import fem_rows
+
+    from fibers import pipeline, synthetic
+    from fibers.io import case as case_io, outputs
+
+    lv = synthetic.demo_subject()
+    contours, _ = lv.sample_stack(noise=0.4, shift=2.0, seed=11)
+    case = case_io.resolve_case({"input": {"contours": "demo.csv"}, "mesh": {"size": size}})
+    case = replace(case, landmarks=lv.landmarks())
+    result = pipeline.run(contours, case)
+    out = Path(tempfile.mkdtemp(prefix="fibers-bench-"))
+    t0 = time.perf_counter()
+    outputs.write_all(out, result)
+    result.timings["outputs"] = time.perf_counter() - t0
+    shutil.rmtree(out, ignore_errors=True)
+    row = {"size": size, "tets": len(result.mesh.tets), "timings": result.timings,
+           "fem": fem_rows(result.mesh)}
+    if with_pools_bench:
+        from pools_bench import pool_rows
+        row["pools"] = pool_rows(result.mesh, result.coords, law=case.law, septum=result.septum)
+    row["peak_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    return row
+
+
+def main() -> int:
+    if len(sys.argv) == 4 and sys.argv[1] == "--one":
+        print(json.dumps(one(float(sys.argv[2]), sys.argv[3] == "1"), default=float))
+        return 0
+    rows = []
+    for label, size in SIZES.items():
+        print(f"bench: {label} tetrahedra (mesh size {size} mm) ...", file=sys.stderr, flush=True)
+        proc = subprocess.run([sys.executable, __file__, "--one", str(size), "1" if label == "~500k" else "0"],
+                              capture_output=True, text=True)
+        if proc.returncode != 0:
+            print(proc.stderr[-2000:], file=sys.stderr)
+            return 1
+        rows.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+
+    print("\nStages on the demo ventricle (seconds; ratio = stage / meshing)")
+    head = f"{'tets':>9} {'mesh':>7} " + " ".join(f"{s:>12}" for s in AFTER) + f" {'after/mesh':>10} {'peak MB':>8}"
+    print(head)
+    print("-" * len(head))
+    for r in rows:
+        t = r["timings"]
+        after = sum(t[s] for s in AFTER)
+        cells = " ".join(f"{t[s]:6.2f} ({t[s] / t['mesh']:.2f})" for s in AFTER)
+        print(f"{r['tets']:>9,} {t['mesh']:7.2f} {cells} {after / t['mesh']:10.2f} {r['peak_mb']:8.0f}")
+
+    print("\nFinite elements against references on the same mesh (ratio = reference / ours)")
+    head = f"{'tets':>9} {'what':<20} {'ours s':>8} {'ref s':>8} {'ratio':>7}  reference"
+    print(head)
+    print("-" * len(head))
+    for r in rows:
+        for f in r["fem"]:
+            print(f"{f['tets']:>9,} {f['name']:<20} {f['ours_s']:8.3f} {f['reference_s']:8.3f} {f['ratio']:7.1f}  {f['note']}")
+
+    for r in rows:
+        if "pools" in r:
+            print(f"\nPoint location and pools, 10^6 points on {r['tets']:,} tetrahedra")
+            print(f"{'step':<44} {'points':>9} {'seconds':>8} {'points/s':>10}")
+            for p in r["pools"]:
+                print(f"{p['step']:<44} {p['points']:>9} {p['seconds']:8.2f} {p['points_per_s']:10.3g}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
