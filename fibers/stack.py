@@ -136,7 +136,6 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
         raise InputError(
             f"{src}, slice {k}: no endocardial contour on a slice between slices that have one; "
             f"only the most apical slices may lack it")
-    base_h = height[order[0]] if axis @ normals[order[0]] > 0 else height[order[0]]
     base_h = float(centres[order[0]] @ axis)
     extent = base_h - float(centres[order[-1]] @ axis)
     if extent < MIN_EXTENT_MM:
@@ -154,7 +153,12 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
                 continue
             pts, lines = groups[(s, k)]
             xy = pts @ plane.T
-            if _signed_area(xy) < 0:
+            area = _signed_area(xy)
+            if abs(area) < 1.0 or abs(area) < 0.02 * np.ptp(xy, axis=0).max() ** 2:
+                raise InputError(
+                    f"{src}, line {lines[0]}, slice {k}: the {s} contour encloses almost no area "
+                    f"({abs(area):.2g} mm^2); its points lie on a line or fold back on themselves")
+            if area < 0:
                 pts, xy, lines = pts[::-1], xy[::-1], lines[::-1]
             cross = _self_crossing(xy)
             if cross is not None:
@@ -226,6 +230,12 @@ def _group(contours: RawContours) -> dict:
         keep = np.concatenate([[True], step > 1e-9 * max(scale, 1e-12)])  # drop repeated points
         pts, lines = pts[keep], lines[keep]
         s, k = str(contours.structure[f]), int(contours.slice_id[f])
+        distinct = len(np.unique(np.round(pts / max(scale, 1e-12) * 1e6), axis=0))
+        if distinct < 0.9 * len(pts):
+            raise InputError(
+                f"{src}, line {contours.line[rows[0]]}, slice {k}: the {s} contour repeats "
+                f"{len(pts) - distinct} of its {len(pts)} points; was it listed twice? Give each "
+                f"contour once")
         if len(pts) < MIN_POINTS:
             raise InputError(
                 f"{src}, line {contours.line[rows[0]]}, slice {k}: the {s} contour has only "

@@ -186,3 +186,23 @@ def test_debug_shows_traceback(tmp_path, capsys):
     code = cli.main(["--debug", "build", str(tmp_path / "case.toml"), "--out", str(tmp_path / "o")])
     err = capsys.readouterr().err
     assert code == 2 and "Traceback" in err and "error: " in err
+
+
+def test_contour_listed_twice(tmp_path, capsys):
+    _, c = _good()
+    rows = _rows(c, 2, "epi")
+    twice = _edit(c, structure=np.concatenate([c.structure, c.structure[rows]]),
+                  slice_id=np.concatenate([c.slice_id, c.slice_id[rows]]),
+                  points=np.concatenate([c.points, c.points[rows]]),
+                  line=np.arange(2, len(c.points) + len(rows) + 2))
+    assert "listed twice" in _run(tmp_path, capsys, contours=twice)
+
+
+def test_collinear_contour(tmp_path, capsys):
+    _, c = _good()
+    rows = _rows(c, 3, "endo")
+    pts = c.points.copy()
+    a, b = pts[rows[0]], pts[rows[len(rows) // 2]]
+    t = np.linspace(0, 1, len(rows))
+    pts[rows] = a + t[:, None] * (b - a)
+    assert "encloses almost no area" in _run(tmp_path, capsys, contours=_edit(c, points=pts))
