@@ -10,11 +10,13 @@ stage after meshing (report excluded) over the meshing time (target <= 1 at ~500
 from __future__ import annotations
 
 import json
+import os
 import resource
 import subprocess
 import sys
 from pathlib import Path
 
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # as the command line does (fibers/cli.py)
 HERE = Path(__file__).resolve().parent
 SIZES = {"~50k": 2.2, "~200k": 1.3, "~500k": 0.97, "~1M": 0.77}
 AFTER = ("segments", "coordinates", "architecture", "pools", "outputs")
