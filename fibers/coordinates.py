@@ -128,7 +128,7 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
                          "the wall is pinched to zero thickness, check the contours")
 
     volumes, grads = fem.tet_gradients(points, tets)
-    K = fem.stiffness(points, tets)
+    K = fem.stiffness(points, tets, volumes=volumes, grads=grads)
 
     transmural = fem.solve_dirichlet(
         K, np.concatenate([endo, epi]),

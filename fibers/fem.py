@@ -67,13 +67,16 @@ def tet_gradients(points: np.ndarray, tets: np.ndarray) -> tuple[np.ndarray, np.
     return np.abs(det) / 6.0, grads
 
 
-def stiffness(points: np.ndarray, tets: np.ndarray) -> sp.csr_matrix:
+def stiffness(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | None = None,
+              grads: np.ndarray | None = None) -> sp.csr_matrix:
     """Assemble the P1 Laplace (stiffness) matrix ``K_ij = integral grad(phi_i) . grad(phi_j)``.
 
     Parameters
     ----------
     points : ndarray (N, 3) float64, mm
     tets : ndarray (M, 4) int
+    volumes, grads : ndarray (M,), (M, 4, 3), optional
+        The output of :func:`tet_gradients`, when the caller has it already.
 
     Returns
     -------
@@ -81,7 +84,7 @@ def stiffness(points: np.ndarray, tets: np.ndarray) -> sp.csr_matrix:
         Symmetric positive semi-definite; its rows sum to zero.
     """
     n = len(points)
-    vol, grads = tet_gradients(points, tets)
+    vol, grads = tet_gradients(points, tets) if grads is None or volumes is None else (volumes, grads)
     local = np.matmul(grads, grads.transpose(0, 2, 1))
     local *= vol[:, None, None]
     index_type = np.int32 if n < 2**31 - 1 else np.int64

@@ -178,20 +178,25 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
 
 # -- inside the cavity -----------------------------------------------------------------------
 
-class CavityTest:
-    """Whether points lie in the volume closed by the endocardial faces and the base plane.
+class EnclosedTest:
+    """Whether points below the base plane lie inside the surface made of some boundary faces.
 
-    Parity of the crossings of a ray toward the apex with the endocardial faces (see the module
-    docstring). Faces are binned on a 2-D grid over their projection onto the base plane.
+    Parity of the crossings of a ray toward the apex with the faces (see the module docstring).
+    With the endocardial faces it tells the cavity (closed by the base plane); with the
+    endocardial and epicardial faces it tells the wall itself, since a ray from below the base
+    toward the apex never meets the base faces. Faces are binned on a 2-D grid over their
+    projection onto the base plane.
 
     Parameters
     ----------
     mesh : WallMesh
+    tags : tuple of int
+        Face tags making up the surface.
     """
 
-    def __init__(self, mesh: WallMesh):
+    def __init__(self, mesh: WallMesh, tags: tuple[int, ...] = (ENDO,)):
         self.axis = mesh.axis
-        tri = mesh.faces[mesh.face_tags == ENDO]
+        tri = mesh.faces[np.isin(mesh.face_tags, tags)]
         local = _to_local(mesh.axis, mesh.points)[tri]        # (T, 3, 3): x1, x2, z
         xy, self._z = local[:, :, :2], local[:, :, 2]
         self._a = xy[:, 0]
@@ -388,7 +393,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
         raise InputError("the mesh has no endo faces, so the cavity cannot be told from the "
                          "background: set pools.cavity and pools.background to 0 or check the "
                          "face tags")
-    cavity = CavityTest(mesh) if settings.cavity or settings.background else None
+    cavity = EnclosedTest(mesh) if settings.cavity or settings.background else None
     endo_local = _to_local(mesh.axis, mesh.points[mesh.face_nodes(ENDO)])
     lo = endo_local.min(axis=0)
     hi = np.r_[endo_local[:, :2].max(axis=0), 0.0]
@@ -400,11 +405,16 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     pools["cavity"] = Pool("cavity", {"points": points})
     log.info("pool cavity: %d points", len(points))
 
-    if locator is None and settings.background:
-        locator = Locator(mesh.points, mesh.tets)
+    # outside the wall: the ray-parity test against endo and epi faces is exact for this mesh
+    # and needs no element search structure (a Locator costs ~2 s to build at 500k tetrahedra);
+    # a given locator is used instead
+    if locator is not None:
+        in_wall = lambda p: locator(p)[0] >= 0  # noqa: E731
+    elif settings.background:
+        in_wall = EnclosedTest(mesh, tags=(ENDO, EPI))
     wall_share = float(np.abs(volumes).sum()) / max(box.volume, 1e-300)
     points = _rejection(rngs["background"], int(settings.background), settings.sampler,
-                        _box_map(box), lambda p: locator(p)[0] < 0, max(1.0 - wall_share, 0.05))
+                        _box_map(box), lambda p: ~in_wall(p), max(1.0 - wall_share, 0.05))
     depth = segments.depth_below_base(points, mesh.axis)
     region = np.where(depth < 0.0, ABOVE_BASE,
                       np.where(cavity(points) if len(points) else False, CAVITY, OUTSIDE))

@@ -294,3 +294,20 @@ def test_surface_points_lie_on_their_owner_tet(case, built):
         assert (face_nodes[:, :, None] == tet_nodes[:, None, :]).any(axis=2).all()
         b = Locator(mesh.points, mesh.tets)._barycentric(arr["points"], arr["tet"])
         assert b.min() > -1e-9 and np.abs(b.min(axis=1)).max() < 1e-9
+
+
+def test_ray_parity_wall_test_agrees_with_point_location(case):
+    # Two independent exact tests of "inside the wall": ray parity against the endo and epi
+    # faces (Jordan curve theorem, a ray crosses a closed surface an odd number of times from
+    # inside) and element location with barycentric coordinates. They must agree.
+    from fibers.locate import Locator
+    from fibers.types import ENDO, EPI
+
+    mesh = case[0]
+    rng = np.random.default_rng(3)
+    lo, hi = mesh.points.min(0) - 5, mesh.points.max(0) + 5
+    q = lo + rng.random((40_000, 3)) * (hi - lo)
+    by_parity = pools.EnclosedTest(mesh, tags=(ENDO, EPI))(q)
+    by_location = Locator(mesh.points, mesh.tets)(q)[0] >= 0
+    assert by_location.sum() > 1000
+    assert np.count_nonzero(by_parity != by_location) <= 2  # ties on faces only

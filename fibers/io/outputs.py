@@ -116,7 +116,7 @@ def write_surfaces(path: Path, result) -> None:
     poly.point_data["residual_mm"] = np.concatenate([np.zeros(n0), *residual])
     poly.point_data["slice"] = np.concatenate([np.full(n0, -1), *slice_ids]).astype(np.int32)
     poly.point_data["contour_structure"] = np.concatenate([np.zeros(n0, np.int8), *structure]).astype(np.int8)
-    poly.save(path)
+    poly.save(path, compression=None)
 
 
 def manifest(result, case, inputs: list) -> dict:

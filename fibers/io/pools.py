@@ -44,7 +44,7 @@ def _write_vtp(path: Path, arrays: dict) -> None:
         elif len(value) == n:
             # VTK has no int8 reader everywhere; widen small integers for viewers.
             cloud.point_data[key] = value.astype(np.int32) if value.dtype.kind in "iub" else value
-    cloud.save(str(path), binary=True)
+    cloud.save(str(path), binary=True, compression=None)  # zlib tripled the time
 
 
 def write_pools(folder, pools: dict, *, vtp: bool = True) -> list[Path]:
