@@ -66,7 +66,7 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
         BASE: _stitch_all(base_idx, base_angles),
     }
     # orient each surface out of the wall (endo: into the cavity, epi: outward, base: toward +z)
-    centre = np.array([0.0, 0.0, surfaces.centre_z])
+    centre = np.array([0.0, 0.0, surfaces.systems["epi"][0]])
     for tag, faces in tri.items():
         n, a = meshtools.triangle_normals(local, faces)
         c = local[faces].mean(axis=1)

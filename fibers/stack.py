@@ -25,7 +25,7 @@ MIN_POINTS = 6               # fewer points cannot describe a closed contour
 MAX_TILT_DEG = 10.0          # "parallel within a few degrees" (DESIGN 3.1), with room for noise
 MAX_OUT_OF_PLANE_MM = 2.0    # RMS distance of a slice's points from its plane
 MIN_SLICE_GAP_MM = 1.0       # closer than this, two slices are the same plane
-MIN_ENDO_SLICES = 3
+MIN_ENDO_SLICES = 2
 MIN_EXTENT_MM = 20.0
 EPI_RADIUS_MM = (5.0, 120.0)  # plausible epicardial radius in mm; outside, the units are wrong
 

@@ -2,9 +2,9 @@
 
 Each surface is a graph in prolate spheroidal coordinates about the long axis,
 ``lambda = L(mu, theta)``, fitted by regularised least squares: a smooth field that averages
-over contour noise and residual slice shifts instead of passing through every point. The
-coordinate system (focal length, centre) comes from an ellipse fitted to the epicardial radius
-profile, so a spheroid-like ventricle has a nearly constant ``L``. ``mu = 0`` is the apical pole,
+over contour noise and residual slice shifts instead of passing through every point. Each
+surface's coordinate system (focal length, centre) comes from an ellipse fitted to its own
+radius profile, so a spheroid-like surface has a nearly constant ``L``. ``mu = 0`` is the apical pole,
 where every harmonic of order m >= 1 is damped by ``sin(mu)^m`` so the surface stays smooth; the
 apex beyond the last contour follows from that smoothness and the bending penalty. The base is
 the plane of the most basal slice, normal to the long axis.
@@ -22,24 +22,28 @@ import numpy as np
 from fibers.errors import InputError
 from fibers.types import LongAxis, Stack
 
-DEGREE_AXIAL = 6        # polynomial degree in mu of the axisymmetric part
-DEGREE_HARMONIC = 4     # polynomial degree in mu of each harmonic
+DEGREE_AXIAL = 6        # polynomial degree in sin^2(mu/2) of the axisymmetric part
+DEGREE_HARMONIC = 4     # polynomial degree in sin^2(mu/2) of each harmonic
 HARMONICS = 4           # Fourier orders in theta
-BENDING = 3e-5          # weight of the bending penalty relative to the data term (tuned on
-                        # synthetic stacks: residuals reach the noise level, apex within ~1 mm)
+BENDING = 1e-4          # weight of the bending penalty relative to the data term, both in mm;
+                        # tuned on synthetic stacks (0.4-0.5 mm noise, 2 mm shifts): residual RMS
+                        # at the noise level and the extrapolated apex within ~0.5 mm
 
 
 @dataclass(frozen=True)
 class Surfaces:
     """The fitted endo and epi surfaces and where they meet the base plane.
 
+    Each surface has its own prolate system, fitted to its own radius profile, so that a
+    spheroid-like surface is close to ``lambda = const`` in it and the apex extrapolates well.
+
     Attributes
     ----------
     axis : LongAxis
-    centre_z, focal : float
-        Height of the prolate centre above the base plane (mm, negative) and focal length (mm).
-    mu_max : float
-        Upper end of the mu range the basis is scaled to, radians.
+    systems : dict
+        ``"endo"`` / ``"epi"`` -> (centre height above the base plane, mm; focal length, mm).
+    mu_max : dict
+        Upper end of the mu range each basis is scaled to, radians.
     coef : dict
         ``"endo"`` / ``"epi"`` -> coefficient vector of ``L(mu, theta)``.
     residuals : tuple of dict
@@ -47,20 +51,20 @@ class Surfaces:
     """
 
     axis: LongAxis
-    centre_z: float
-    focal: float
-    mu_max: float
+    systems: dict
+    mu_max: dict
     coef: dict
     residuals: tuple
 
     def lam(self, surface: str, mu, theta) -> np.ndarray:
-        return _basis(np.asarray(mu, float), np.asarray(theta, float), self.mu_max) @ self.coef[surface]
+        return _basis(np.asarray(mu, float), np.asarray(theta, float), self.mu_max[surface]) @ self.coef[surface]
 
     def local_point(self, surface: str, mu, theta) -> np.ndarray:
         """Points (K, 3) in the axis frame (x1, x2, z) on a surface."""
         mu, theta = np.broadcast_arrays(np.asarray(mu, float), np.asarray(theta, float))
         lam = self.lam(surface, mu.ravel(), theta.ravel())
-        return _prolate_to_local(lam, mu.ravel(), theta.ravel(), self.focal, self.centre_z)
+        zc, d = self.systems[surface]
+        return _prolate_to_local(lam, mu.ravel(), theta.ravel(), d, zc)
 
     def base_mu(self, surface: str, theta: np.ndarray) -> np.ndarray:
         """mu where the surface meets the base plane z = 0, for each theta (bisection)."""
@@ -77,8 +81,12 @@ class Surfaces:
 
     def distance(self, surface: str, world: np.ndarray) -> np.ndarray:
         """Signed distance (K,) mm of world points from a surface, positive outside it."""
-        lam, mu, theta = _local_to_prolate(self.axis.to_local(world), self.focal, self.centre_z)
-        return _metric(lam, mu, self.focal) * (lam - self.lam(surface, mu, theta))
+        return self._local_distance(surface, self.axis.to_local(world))
+
+    def _local_distance(self, surface, local):
+        zc, d = self.systems[surface]
+        lam, mu, theta = _local_to_prolate(local, d, zc)
+        return _metric(lam, mu, d) * (lam - self.lam(surface, mu, theta))
 
     def apex(self, surface: str) -> np.ndarray:
         """World position of a surface's apical pole (mu = 0)."""
@@ -105,69 +113,67 @@ def fit_surfaces(stack: Stack) -> Surfaces:
     local = {s: np.concatenate(v) for s, v in local.items()}
     tags = {s: np.concatenate(v) for s, v in tags.items()}
 
-    centre_z, focal = _prolate_system(stack, local["epi"])
-    mu_data = {}
-    coords = {}
-    for s in ("endo", "epi"):
-        lam, mu, theta = _local_to_prolate(local[s], focal, centre_z)
-        coords[s] = (lam, mu, theta)
-        mu_data[s] = mu
-    mu_max = max(float(mu_data["epi"].max()), float(mu_data["endo"].max())) + np.radians(8.0)
-    mu_max = min(mu_max, np.pi - 1e-3)
-
-    coef, residuals = {}, []
-    for s in ("endo", "epi"):
-        lam, mu, theta = coords[s]
-        coef[s] = _fit(lam, mu, theta, focal, mu_max)
-        fitted = _basis(mu, theta, mu_max) @ coef[s]
-        dist = _metric(lam, mu, focal) * (lam - fitted)
+    extent = max(sl.height for sl in stack.slices)
+    systems, mu_max, coef, residuals = {}, {}, {}, []
+    for s in ("epi", "endo"):
+        systems[s] = _prolate_system(local[s], tags[s], extent, fallback=systems.get("epi"))
+        zc, d = systems[s]
+        lam, mu, theta = _local_to_prolate(local[s], d, zc)
+        mu_max[s] = min(float(mu.max()) + np.radians(8.0), np.pi - 1e-3)
+        coef[s] = _fit(lam, mu, theta, d, mu_max[s])
+        dist = _metric(lam, mu, d) * (lam - _basis(mu, theta, mu_max[s]) @ coef[s])
         for k in np.unique(tags[s]):
-            d = dist[tags[s] == k]
-            residuals.append({"slice": int(k), "structure": s, "rms_mm": float(np.sqrt(np.mean(d * d))),
-                              "max_mm": float(np.abs(d).max())})
-    surfaces = Surfaces(axis=axis, centre_z=centre_z, focal=focal, mu_max=mu_max, coef=coef,
-                        residuals=tuple(residuals))
+            dk = dist[tags[s] == k]
+            residuals.append({"slice": int(k), "structure": s, "rms_mm": float(np.sqrt(np.mean(dk * dk))),
+                              "max_mm": float(np.abs(dk).max())})
+    residuals.sort(key=lambda r: (r["structure"] != "endo", [sl.slice_id for sl in stack.slices].index(r["slice"])))
+    surfaces = Surfaces(axis=axis, systems=systems, mu_max=mu_max, coef=coef, residuals=tuple(residuals))
 
-    # the wall must have thickness everywhere: endo inside epi on a dense grid
-    mu = np.linspace(0, mu_max, 120)
+    # the wall must have thickness everywhere: the endocardium inside the epicardium
     theta = np.linspace(-np.pi, np.pi, 73)
-    M, T = np.meshgrid(mu, theta, indexing="ij")
-    gap = surfaces.lam("epi", M.ravel(), T.ravel()) - surfaces.lam("endo", M.ravel(), T.ravel())
-    thickness = gap * _metric(surfaces.lam("epi", M.ravel(), T.ravel()), M.ravel(), focal)
+    t = np.linspace(0.0, 1.0, 60)
+    T, TH = np.meshgrid(t, theta, indexing="ij")
+    mu = T * surfaces.base_mu("endo", theta)[None, :]
+    endo_pts = surfaces.local_point("endo", mu.ravel(), TH.ravel())
+    below = endo_pts[:, 2] < -1e-6
+    thickness = -surfaces._local_distance("epi", endo_pts[below])
     if thickness.min() < 0.5:
-        where = "at the apex" if M.ravel()[np.argmin(thickness)] < np.radians(30) else "mid-wall"
+        where = "at the apex" if T.ravel()[below][np.argmin(thickness)] < 0.3 else "mid-wall"
         raise InputError(
             f"{stack.source}: the fitted endocardium meets the epicardium {where} "
             f"(wall thickness {thickness.min():.1f} mm); check the apical slices' contours")
     return surfaces
 
 
-def _prolate_system(stack: Stack, epi_local: np.ndarray) -> tuple[float, float]:
-    """Centre height and focal length from an ellipse fitted to the epicardial radius profile."""
-    z = np.array([-sl.height for sl in stack.slices])
-    r = []
-    for sl in stack.slices:
-        p = stack.axis.to_local(sl.epi)
-        r.append(np.mean(np.hypot(p[:, 0], p[:, 1])))
-    r = np.array(r)
-    extent = float(-z.min())
-    zc, a, b = None, None, None
+def _prolate_system(local: np.ndarray, tags: np.ndarray, extent: float, *, fallback=None) -> tuple[float, float]:
+    """Centre height and focal length of the spheroid that best fits a surface's radius profile.
+
+    r^2 = A + B z + C z^2 is fitted to the mean radius of each slice; a spheroid (C < 0) gives
+    the centre, the half-axes a, b and so the focal length sqrt(a^2 - b^2), kept above b / 20
+    so a sphere is handled as a nearly spherical system. Without a spheroid (too few slices, a
+    straight profile) the other surface's system or a generic one is used.
+    """
+    ids = np.unique(tags)
+    z = np.array([local[tags == k, 2].mean() for k in ids])
+    r = np.array([np.hypot(local[tags == k, 0], local[tags == k, 1]).mean() for k in ids])
+    found = None
     if len(z) >= 3:
         c2, c1, c0 = np.polyfit(z, r * r, 2)
         if c2 < 0:
             zc = -c1 / (2 * c2)
             b2 = c0 - c1 * c1 / (4 * c2)
-            if b2 > 0:
-                b = np.sqrt(b2)
-                a = np.sqrt(b2 / -c2)
-    if zc is None or not (-0.8 * extent <= zc <= -0.05 * extent) or a is None:
-        # a stack too straight for an ellipse: centre a quarter down, apex just past the stack
-        zc = -0.25 * extent
-        b = float(r.max())
-        a = extent - 0.25 * extent + 0.3 * b
-    zc = float(np.clip(zc, -0.8 * extent, -0.05 * extent))
-    focal = float(np.sqrt(max(a * a - b * b, (0.5 * b) ** 2)))
-    return zc, focal
+            if b2 > 0 and -1.2 * extent <= zc <= 0.3 * extent:
+                a, b = np.sqrt(b2 / -c2), np.sqrt(b2)
+                found = (float(zc), float(np.sqrt(max(a * a - b * b, (0.05 * b) ** 2))))
+    if found is not None:
+        return found
+    if fallback is not None:
+        return fallback
+    # a stack too straight for an ellipse: centre a quarter down, apex just past the stack
+    b = float(r.max())
+    zc = -0.25 * extent
+    a = 0.75 * extent + 0.3 * b
+    return float(zc), float(np.sqrt(max(a * a - b * b, (0.05 * b) ** 2)))
 
 
 def _local_to_prolate(local: np.ndarray, d: float, zc: float):
@@ -192,8 +198,11 @@ def _metric(lam, mu, d):
 
 
 def _basis(mu: np.ndarray, theta: np.ndarray, mu_max: float) -> np.ndarray:
-    """Basis functions (K, P) of L(mu, theta): Legendre in mu times sin(mu)^m Fourier terms."""
-    u = 2.0 * np.asarray(mu) / mu_max - 1.0
+    """Basis functions (K, P) of L(mu, theta): Legendre polynomials in sin^2(mu / 2), times
+    sin(mu)^m cos / sin(m theta) for the harmonics."""
+    # polynomials in sin^2(mu / 2), an even function of mu: a smooth surface of revolution has
+    # zero slope dL/dmu at the pole, so the extrapolated apex cannot come out as a cone
+    u = 2.0 * np.sin(0.5 * np.asarray(mu)) ** 2 / np.sin(0.5 * mu_max) ** 2 - 1.0
     cols = [np.polynomial.legendre.legvander(u, DEGREE_AXIAL)]
     vh = np.polynomial.legendre.legvander(u, DEGREE_HARMONIC)
     s = np.sin(mu)
@@ -216,7 +225,7 @@ def _fit(lam, mu, theta, d, mu_max):
     M, T = np.meshgrid(gm, gt, indexing="ij")
     G = _basis(M.ravel(), T.ravel(), mu_max).reshape(len(gm), len(gt), -1)
     dmu, dth = gm[1] - gm[0], gt[1] - gt[0]
-    scale = d * d  # lambda -> mm^2 at unit sinh
+    scale = float(np.mean(w * w))  # lambda -> mm^2 on this surface
     d2mu = (G[2:] - 2 * G[1:-1] + G[:-2]) / dmu**2
     d2th = (np.roll(G, -1, 1) - 2 * G + np.roll(G, 1, 1)) / dth**2
     d2th = d2th * (np.sin(gm)[:, None, None] ** 2)  # circumferential arc shrinks toward the apex
