@@ -13,7 +13,7 @@ import time
 import uuid
 import warnings
 from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -194,6 +194,8 @@ def _read_inputs(case):
         labels_cfg["rv"] = None
     values = labelmap.LabelValues(**labels_cfg)
     contours, found, box = labelmap.contours_from_labelmap(labels, affine, values, source=case.labelmap.name)
+    spacing = float(np.linalg.norm(np.asarray(affine)[:3, labelmap.slice_axis(affine)]))
+    contours = replace(contours, slice_thickness=spacing)
     # the user's explicit points win over the ones read off the label map
     landmarks = case.landmarks if case.landmarks.present else found
     return contours, landmarks, box, [_provenance(case.labelmap)]

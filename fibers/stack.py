@@ -136,7 +136,8 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
         raise InputError(
             f"{src}, slice {k}: no endocardial contour on a slice between slices that have one; "
             f"only the most apical slices may lack it")
-    base_h = float(centres[order[0]] @ axis)
+    # the base plane: the most basal slice, or the upper face of its slab for a label map
+    base_h = float(centres[order[0]] @ axis) + 0.5 * float(contours.slice_thickness)
     extent = base_h - float(centres[order[-1]] @ axis)
     if extent < MIN_EXTENT_MM:
         raise InputError(f"{src}: the stack spans only {extent:.1f} mm from base to apex; a wall needs at least {MIN_EXTENT_MM:.0f} mm")

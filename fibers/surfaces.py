@@ -119,7 +119,8 @@ def fit_surfaces(stack: Stack) -> Surfaces:
         systems[s] = _prolate_system(local[s], tags[s], extent, fallback=systems.get("epi"))
         zc, d = systems[s]
         lam, mu, theta = _local_to_prolate(local[s], d, zc)
-        mu_max[s] = min(float(mu.max()) + np.radians(8.0), np.pi - 1e-3)
+        # room above the most basal contour: the base plane may lie half a slab above it
+        mu_max[s] = min(float(mu.max()) + np.radians(15.0), np.pi - 1e-3)
         coef[s] = _fit(lam, mu, theta, d, mu_max[s])
         dist = _metric(lam, mu, d) * (lam - _basis(mu, theta, mu_max[s]) @ coef[s])
         for k in np.unique(tags[s]):

@@ -29,6 +29,10 @@ class RawContours:
         Line number in the source file (1-based, header is line 1), for error messages.
     source : str
         File name the rows came from.
+    slice_thickness : float, mm
+        Thickness each slice stands for: 0 for contours (the base is the plane of the most
+        basal slice), the slice spacing for a label map, whose voxels stand for their whole
+        slab (the base is then the slab's upper face, half a slice above its centre).
     """
 
     structure: np.ndarray
@@ -36,6 +40,7 @@ class RawContours:
     points: np.ndarray
     line: np.ndarray
     source: str = "contours"
+    slice_thickness: float = 0.0
 
 
 @dataclass(frozen=True)
