@@ -161,7 +161,7 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     cell_e_circ = np.cross(cell_e_long, cell_e_rad)
 
     centroids = points[tets].mean(axis=1)
-    log.info("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
+    log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=apicobasal, circumferential=circumferential,
         e_rad=e_rad, e_long=e_long, e_circ=e_circ,

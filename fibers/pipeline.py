@@ -73,7 +73,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
     caught = []
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
-        with clock.stage("stack", lambda: f"{len(stack.slices)} slices, base to apex"):
+        with clock.stage("stack", lambda: f"{len(stack.slices)} slices, base to apex; breath-hold shifts up to "
+                         f"{max(np.linalg.norm(sl.shift) for sl in stack.slices):.1f} mm removed"):
             stack = stack_stage.check_stack(contours, align_slices=case.align_slices)
         with clock.stage("surfaces", lambda: f"fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm"):
             surf = surface_stage.fit_surfaces(stack)
@@ -166,7 +167,7 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
         if report:
             from fibers import report as report_stage
             with clock.stage("report", "report/index.html"):
-                report_stage.write_report(tmp, result=result, manifest=manifest)
+                report_stage.write_report(tmp, result=result, manifest=manifest, name=out.name)
         clock.timings["total"] = round(time.perf_counter() - clock.start, 4)
         manifest["timings_s"] = dict(clock.timings)
         outputs.write_manifest(tmp, manifest)

@@ -368,7 +368,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     arrays.update(point_fields(points, mesh.tets[tet], bary, mesh, coords, law, septum))
     arrays["tet"] = tet
     pools["myocardium"] = Pool("myocardium", arrays)
-    log.info("pool myocardium: %d points", n)
+    log.debug("pool myocardium: %d points", n)
 
     normals, areas = meshtools.triangle_normals(mesh.points, mesh.faces)
     owner = _owners(mesh) if any(getattr(settings, k) for k in _SURFACE_TAGS) else None
@@ -387,7 +387,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
         arrays["face"] = face
         arrays["tet"] = owner[face] if n else np.zeros(0, np.int64)
         pools[name] = Pool(name, arrays)
-        log.info("pool %s: %d points", name, n)
+        log.debug("pool %s: %d points", name, n)
 
     if (settings.cavity or settings.background) and not np.any(mesh.face_tags == ENDO):
         raise InputError("the mesh has no endo faces, so the cavity cannot be told from the "
@@ -403,7 +403,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     points = _rejection(rngs["cavity"], int(settings.cavity), settings.sampler,
                         _box_map(cav_box), cavity, 0.5)
     pools["cavity"] = Pool("cavity", {"points": points})
-    log.info("pool cavity: %d points", len(points))
+    log.debug("pool cavity: %d points", len(points))
 
     # outside the wall: the ray-parity test against endo and epi faces is exact for this mesh
     # and needs no element search structure (a Locator costs ~2 s to build at 500k tetrahedra);
@@ -420,7 +420,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
                       np.where(cavity(points) if len(points) else False, CAVITY, OUTSIDE))
     pools["background"] = Pool("background", {"points": points, "region": region.astype(np.int8),
                                               "region_names": np.array(REGION_NAMES)})
-    log.info("pool background: %d points", len(points))
+    log.debug("pool background: %d points", len(points))
     return {name: pools[name] for name in POOL_NAMES}
 
 

@@ -108,7 +108,7 @@ class _Build:
 
 # ----------------------------------------------------------------------------- public functions
 
-def write_report(folder, *, result=None, manifest: dict | None = None) -> Path:
+def write_report(folder, *, result=None, manifest: dict | None = None, name: str | None = None) -> Path:
     """Draw the figures and write ``folder/report/index.html``.
 
     Parameters
@@ -120,6 +120,9 @@ def write_report(folder, *, result=None, manifest: dict | None = None) -> Path:
         report); everything else is read from the files.
     manifest : dict, optional
         The manifest; read from ``folder/manifest.json`` when not given.
+    name : str, optional
+        The output folder's name as the user will see it (the build draws the report in a
+        temporary folder that is renamed afterwards); default ``folder``'s own name.
 
     Returns
     -------
@@ -138,7 +141,7 @@ def write_report(folder, *, result=None, manifest: dict | None = None) -> Path:
     tmp.mkdir()
     try:
         facts = _draw_all(build, tmp)
-        page = _page(build, facts, timings)
+        page = _page(build, facts, timings, name or folder.name)
         (tmp / "index.html").write_text(page, encoding="utf-8")
         target = folder / "report"
         if target.exists():
@@ -1116,16 +1119,16 @@ def _table(header: list[str], rows: list[list], *, numeric_from: int = 1) -> str
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def _page(build: _Build, facts: dict, timings: dict) -> str:
+def _page(build: _Build, facts: dict, timings: dict, name: str) -> str:
     from fibers.segments import SEGMENT_NAMES
 
     m = build.manifest
     s = m.get("summary") or {}
     counts = s.get("counts") or {}
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>fibers report: "
-             f"{_e(build.folder.name)}</title><style>{CSS}</style></head><body>",
+             f"{_e(name)}</title><style>{CSS}</style></head><body>",
              f"<h1>fibers build report</h1><p class=\"muted\">{_e(m.get('tool', 'fibers'))} "
-             f"{_e(m.get('version', ''))}, output folder <code>{_e(build.folder.name)}</code> "
+             f"{_e(m.get('version', ''))}, output folder <code>{_e(name)}</code> "
              "(PNG figures beside this page)</p>",
              f'<p class="caution">Caution. {_e(CAUTION)}</p>',
              "<nav>" + "".join(f'<a href="#{a}">{t}</a>' for a, t in (

@@ -206,7 +206,7 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
                                  shift=shift))
     if align_slices:
         mags = np.linalg.norm(shifts2d, axis=1)
-        log.info("aligned %d slices: breath-hold shifts up to %.1f mm (mean %.1f mm)", len(order), mags.max(), mags.mean())
+        log.debug("aligned %d slices: breath-hold shifts up to %.1f mm (mean %.1f mm)", len(order), mags.max(), mags.mean())
     warnings = []
     big = np.linalg.norm(shifts2d, axis=1).max() if align_slices else 0.0
     if big > 8.0:
