@@ -66,8 +66,11 @@ class _Clock:
 
 
 def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landmarks | None = None,
-        clock: _Clock | None = None) -> Result:
-    """Run every stage on checked contours and a resolved case (``fibers.io.case.Case``)."""
+        clock: _Clock | None = None, notes: tuple[str, ...] = ()) -> Result:
+    """Run every stage on checked contours and a resolved case (``fibers.io.case.Case``).
+
+    ``notes`` are warnings raised earlier (while reading the inputs) that belong in the result.
+    """
     clock = clock or _Clock()
     landmarks = landmarks if landmarks is not None else case.landmarks
     caught = []
@@ -98,7 +101,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         log.warning("%s", message)
     result = Result(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                     septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
-                    timings=clock.timings, warnings=list(stack.warnings) + caught)
+                    timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught)
     result.summary = summarise(result)
     return result
 
@@ -152,8 +155,13 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
     _check_out(out)
     clock = _Clock()
     with clock.stage("read", lambda: f"{len(contours.points):,} contour points from {contours.source}"):
-        contours, landmarks, box, inputs = _read_inputs(case)
-    result = run(contours, case, box=box, landmarks=landmarks, clock=clock)
+        with warnings.catch_warnings(record=True) as record:
+            warnings.simplefilter("always")
+            contours, landmarks, box, inputs = _read_inputs(case)
+    notes = tuple(str(w.message) for w in record)
+    for message in notes:
+        log.warning("%s", message)
+    result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes)
 
     tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
     try:

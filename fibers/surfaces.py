@@ -18,6 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.spatial import cKDTree
 
 from fibers.errors import InputError
 from fibers.types import LongAxis, Stack
@@ -80,7 +81,11 @@ class Surfaces:
         return 0.5 * (lo + hi)
 
     def distance(self, surface: str, world: np.ndarray) -> np.ndarray:
-        """Signed distance (K,) mm of world points from a surface, positive outside it."""
+        """Signed distance (K,) mm of world points near a surface, positive outside it.
+
+        First order in the offset (the lambda scale factor times the lambda gap): accurate for
+        points within a few mm of the surface, such as its own contour points.
+        """
         return self._local_distance(surface, self.axis.to_local(world))
 
     def _local_distance(self, surface, local):
@@ -130,19 +135,25 @@ def fit_surfaces(stack: Stack) -> Surfaces:
     residuals.sort(key=lambda r: (r["structure"] != "endo", [sl.slice_id for sl in stack.slices].index(r["slice"])))
     surfaces = Surfaces(axis=axis, systems=systems, mu_max=mu_max, coef=coef, residuals=tuple(residuals))
 
-    # the wall must have thickness everywhere: the endocardium inside the epicardium
-    theta = np.linspace(-np.pi, np.pi, 73)
-    t = np.linspace(0.0, 1.0, 60)
+    # the wall must have thickness everywhere: every endocardial point inside the epicardium
+    # (an exact test: lambda grows outward along each coordinate line) and away from it
+    theta = np.linspace(-np.pi, np.pi, 97)[:-1]
+    t = np.linspace(0.0, 1.0, 80)
     T, TH = np.meshgrid(t, theta, indexing="ij")
-    mu = T * surfaces.base_mu("endo", theta)[None, :]
-    endo_pts = surfaces.local_point("endo", mu.ravel(), TH.ravel())
+    endo_pts = surfaces.local_point("endo", (T * surfaces.base_mu("endo", theta)[None, :]).ravel(), TH.ravel())
+    epi_pts = surfaces.local_point("epi", (T * surfaces.base_mu("epi", theta)[None, :]).ravel(), TH.ravel())
+    zc, d = systems["epi"]
+    lam, mu, th = _local_to_prolate(endo_pts, d, zc)
+    outside = lam > surfaces.lam("epi", mu, th)
+    gap = cKDTree(epi_pts).query(endo_pts)[0]
+    gap[outside] = -gap[outside]
     below = endo_pts[:, 2] < -1e-6
-    thickness = -surfaces._local_distance("epi", endo_pts[below])
-    if thickness.min() < 0.5:
-        where = "at the apex" if T.ravel()[below][np.argmin(thickness)] < 0.3 else "mid-wall"
+    if gap[below].min() < 0.5:
+        j = np.flatnonzero(below)[np.argmin(gap[below])]
+        where = "at the apex" if T.ravel()[j] < 0.3 else "mid-wall"
         raise InputError(
             f"{stack.source}: the fitted endocardium meets the epicardium {where} "
-            f"(wall thickness {thickness.min():.1f} mm); check the apical slices' contours")
+            f"(wall thickness {gap[j]:.1f} mm); check the apical slices' contours")
     return surfaces
 
 
