@@ -19,7 +19,7 @@ from pathlib import Path
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # as the command line does (fibers/cli.py)
 HERE = Path(__file__).resolve().parent
 SIZES = {"~50k": 2.2, "~200k": 1.3, "~500k": 0.97, "~1M": 0.77}
-AFTER = ("segments", "coordinates", "architecture", "pools", "outputs")
+from fibers.pipeline import AFTER_MESH as AFTER  # noqa: E402  (the stages the manifest sums)
 
 
 def one(size: float, with_pools_bench: bool) -> dict:
