@@ -104,7 +104,11 @@ def _dispatch(args) -> int:
     if args.command == "report":
         from fibers import report
 
-        report.redraw(args.folder)
+        import time
+
+        t0 = time.perf_counter()
+        page = report.redraw(args.folder)
+        log.info("%-13s %7.2f s  %s", "report", time.perf_counter() - t0, page)
         return 0
     if args.command == "view":
         from fibers import report
