@@ -72,3 +72,13 @@ def test_manifest(built):
     assert m["landmarks"]["source"] == "case file" and len(m["landmarks"]["rv_insertion_anterior"]) == 3
     assert "not a medical device" in m["caution"]
     assert m["conventions"]["e_circ"] == "e_long x e_rad"
+
+
+def test_same_input_same_bytes(built, tmp_path):
+    # DESIGN section 2: same input and seed, same output bytes (meshing on one thread, seeded
+    # multigrid set-up, seeded pools, fixed zip timestamps).
+    again = tmp_path / "again"
+    assert cli.main(["demo", "--out", str(again), "--mesh-size", "3.5", "--no-report"]) == 0
+    for name in ("mesh.vtu", "mesh.h5", "mesh.msh", "surfaces.vtp", "pools/myocardium.npz",
+                 "pools/background.npz", "pools/epi.npz"):
+        assert (built / name).read_bytes() == (again / name).read_bytes(), name
