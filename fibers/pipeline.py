@@ -166,7 +166,11 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
 
     tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
     try:
-        tmp.mkdir(parents=True)
+        try:
+            tmp.mkdir(parents=True)
+        except OSError as err:
+            raise InputError(f"cannot create the output folder beside {out} ({err.strerror}); "
+                             f"choose another --out") from None
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)

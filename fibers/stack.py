@@ -134,8 +134,8 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     if not has_endo[: last_endo + 1].all():
         k = order[int(np.nonzero(~has_endo[: last_endo + 1])[0][0])]
         raise InputError(
-            f"{src}, slice {k}: no endocardial contour on a slice between slices that have one; "
-            f"only the most apical slices may lack it")
+            f"{src}, slice {k}: no endocardial contour, but slices nearer the apex have one; "
+            f"only the most apical slices may lack it: add the contour or drop the slice")
     # the base plane: the most basal slice, or the upper face of its slab for a label map
     base_h = float(centres[order[0]] @ axis) + 0.5 * float(contours.slice_thickness)
     extent = base_h - float(centres[order[-1]] @ axis)
