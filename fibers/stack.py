@@ -271,32 +271,38 @@ def _centroid2d(xy: np.ndarray) -> np.ndarray:
 
 
 def _self_crossing(xy: np.ndarray) -> int | None:
-    """Index of a point where the closed polygon crosses itself, or None (all segment pairs)."""
+    """Index of a point where the closed polygon crosses itself, or None.
+
+    Every pair of non-adjacent edges is tested (orientation signs), in blocks of rows so a
+    contour of thousands of points stays within memory.
+    """
     p, q = xy, np.roll(xy, -1, axis=0)
     n = len(xy)
-    d1 = q - p
-    # orientation tests for every pair (i, j): does segment j straddle segment i and vice versa
+    idx = np.arange(n)
+
     def orient(a, b, c):
         return (b[..., 0] - a[..., 0]) * (c[..., 1] - a[..., 1]) - (b[..., 1] - a[..., 1]) * (c[..., 0] - a[..., 0])
-    pi, qi = p[:, None, :], q[:, None, :]
+
     pj, qj = p[None, :, :], q[None, :, :]
-    o1, o2 = orient(pi, qi, pj), orient(pi, qi, qj)
-    o3, o4 = orient(pj, qj, pi), orient(pj, qj, qi)
-    hit = (o1 * o2 < 0) & (o3 * o4 < 0)
-    idx = np.arange(n)
-    near = (np.abs(idx[:, None] - idx[None, :]) <= 1) | (np.abs(idx[:, None] - idx[None, :]) == n - 1)
-    hit &= ~near
-    if not hit.any():
-        return None
-    del d1
-    return int(np.nonzero(hit.any(axis=1))[0][0])
+    for start in range(0, n, 256):
+        rows = idx[start:start + 256]
+        pi, qi = p[rows, None, :], q[rows, None, :]
+        hit = (orient(pi, qi, pj) * orient(pi, qi, qj) < 0) & (orient(pj, qj, pi) * orient(pj, qj, qi) < 0)
+        gap = np.abs(rows[:, None] - idx[None, :])
+        hit &= (gap > 1) & (gap != n - 1)  # neighbouring edges share a point
+        if hit.any():
+            return int(rows[np.nonzero(hit.any(axis=1))[0][0]])
+    return None
 
 
 def _inside_polygon(points: np.ndarray, polygon: np.ndarray) -> np.ndarray:
-    """Crossing-number test of points (K, 2) against a closed polygon (n, 2)."""
-    a, b = polygon, np.roll(polygon, -1, axis=0)
-    px, py = points[:, 0:1], points[:, 1:2]
-    straddle = (a[None, :, 1] > py) != (b[None, :, 1] > py)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        xcross = a[None, :, 0] + (py - a[None, :, 1]) * (b[None, :, 0] - a[None, :, 0]) / (b[None, :, 1] - a[None, :, 1])
-    return (np.sum(straddle & (px < xcross), axis=1) % 2) == 1
+    """Crossing-number test of points (K, 2) against a closed polygon (n, 2), in blocks."""
+    a, b = polygon[None, :, :], np.roll(polygon, -1, axis=0)[None, :, :]
+    out = np.zeros(len(points), bool)
+    for start in range(0, len(points), 512):
+        px, py = points[start:start + 512, 0:1], points[start:start + 512, 1:2]
+        straddle = (a[..., 1] > py) != (b[..., 1] > py)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            xcross = a[..., 0] + (py - a[..., 1]) * (b[..., 0] - a[..., 0]) / (b[..., 1] - a[..., 1])
+        out[start:start + 512] = (np.sum(straddle & (px < xcross), axis=1) % 2) == 1
+    return out
