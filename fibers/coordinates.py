@@ -17,6 +17,14 @@ Ann Biomed Eng 2012):
   The gradient still concentrates at the patch's rim (where the Dirichlet and zero-flux parts
   meet); that changes its length, not the normalised ``e_long``.
 
+  The raw Laplace value crowds toward the apex (in a cup whose cross-section shrinks to the
+  apex, u grows like a logarithm of the radius: about 0.8 already at mid-height), which makes
+  a poor position coordinate. The ``apicobasal`` field is therefore the Laplace solution
+  remapped by one monotone function of its value, chosen so that each level's mean depth below
+  the base falls linearly from the apical patch (0) to the base (1). Level sets, and so the
+  direction of its gradient, are those of the Laplace solution; ``e_long`` is taken from the
+  unmapped solution.
+
 The **circumferential** coordinate is the angle of a node about the long axis, degrees in
 [-180, 180), zero at ``zero_direction`` and increasing right-handedly about the axis (apex to
 base), i.e. in the direction of ``e_circ``.
@@ -142,6 +150,8 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     # The discrete maximum principle holds only on non-obtuse meshes; clip the tiny overshoot.
     transmural = np.clip(transmural, 0.0, 1.0)
     apicobasal = np.clip(apicobasal, 0.0, 1.0)
+    depth = (mesh.axis.base_centre - points) @ axis_dir
+    position = _even_along_axis(apicobasal, depth, apex)
 
     circumferential = _angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
 
@@ -163,12 +173,40 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     centroids = points[tets].mean(axis=1)
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
-        transmural=transmural, apicobasal=apicobasal, circumferential=circumferential,
+        transmural=transmural, apicobasal=position, circumferential=circumferential,
         e_rad=e_rad, e_long=e_long, e_circ=e_circ,
         cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
         cell_transmural=transmural[tets].mean(axis=1),
-        cell_apicobasal=apicobasal[tets].mean(axis=1),
+        cell_apicobasal=position[tets].mean(axis=1),
         cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero))
+
+
+def _even_along_axis(u: np.ndarray, depth: np.ndarray, patch: np.ndarray, bins: int = 64) -> np.ndarray:
+    """Monotone remap of apicobasal Laplace values u (N,) so that levels are evenly spaced.
+
+    Nodes are grouped into ``bins`` groups of equal size by u; a group's target value is
+    1 - (its mean depth below the base) / (the mean depth of the apical patch). The map runs
+    through (0, 0), the groups' (mean u, target) and (1, 1), kept non-decreasing, and is
+    applied by linear interpolation, so u = 0 stays 0 and u = 1 stays 1.
+    """
+    n = len(u)
+    order = np.argsort(u, kind="stable")
+    group = np.empty(n, dtype=np.int64)
+    group[order] = np.arange(n) * bins // n
+    count = np.bincount(group, minlength=bins).astype(float)
+    keep = count > 0
+    u_mean = np.bincount(group, weights=u, minlength=bins)[keep] / count[keep]
+    d_mean = np.bincount(group, weights=depth, minlength=bins)[keep] / count[keep]
+    apex_depth = float(depth[patch].mean())
+    if apex_depth <= 0:
+        return u
+    target = 1.0 - d_mean / apex_depth
+    inner = (u_mean > 0.0) & (u_mean < 1.0)
+    knots_u = np.concatenate([[0.0], u_mean[inner], [1.0]])
+    knots_t = np.concatenate([[0.0], np.clip(target[inner], 0.0, 1.0), [1.0]])
+    knots_u, first = np.unique(knots_u, return_index=True)  # strictly rising for interp
+    knots_t = np.maximum.accumulate(knots_t[first])
+    return np.interp(u, knots_u, knots_t)
 
 
 def apex_patch(mesh: WallMesh) -> np.ndarray:

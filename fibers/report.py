@@ -671,7 +671,7 @@ def _fig_coordinates(build: _Build, path: Path) -> dict:
         ax.set_title(f"{name} on the long-axis cut (contours every 0.1)")
         cb = fig.colorbar(tpc, ax=ax, shrink=0.75, pad=0.02)
         cb.set_label(label)
-    fig.suptitle("Cardiac coordinates (Laplace solutions) on the wall and on a long-axis cut")
+    fig.suptitle("Cardiac coordinates (from Laplace solutions) on the wall and on a long-axis cut")
     fig.tight_layout()
     _save(fig, path)
     return {}
@@ -1067,7 +1067,9 @@ CAPTIONS = {
                        "wall), coloured by helix angle on a cyclic map (a fiber at +90 degrees is one at -90). "
                        "A wedge is cut away; its faces show the helix turning across the wall.",
     "coordinates.png": "Left: the wall clipped by a plane through the long axis. Right: the same plane as a 2-D "
-                       "cut with iso-lines every 0.1.",
+                       "cut with iso-lines every 0.1. Transmural is the Laplace solution between endocardium "
+                       "and epicardium; apicobasal is the Laplace solution between an apical patch and the base, "
+                       "remapped monotonically so its levels are evenly spaced along the long axis.",
     "helix_depth.png": "Wall pool points: helix angle measured back from the output vectors, "
                        "atan2(fiber.e_long, fiber.e_circ), folded into [-90, 90), against their transmural "
                        "depth; the red line is the prescribed law from the resolved parameters.",

@@ -22,7 +22,7 @@ WALL_TAG = 1  # physical tag of the wall volume in mesh.msh (the faces use 1, 2,
 CONVENTIONS = {
     "units": "lengths mm, volumes mL, mass g, angles degrees",
     "transmural": "0 on the endocardium, 1 on the epicardium (Laplace solution)",
-    "apicobasal": "0 at the apex, 1 at the base plane (Laplace solution)",
+    "apicobasal": "0 at the apex, 1 at the base plane (Laplace solution from an apical patch, remapped monotonically to even spacing along the long axis)",
     "circumferential": "degrees about the long axis in [-180, 180), increasing along e_circ; 0 at the septal bisector when landmarks are given",
     "e_rad": "endocardium to epicardium",
     "e_long": "apex to base, orthogonal to e_rad",
