@@ -190,7 +190,8 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    log.info("%-13s %7.2f s  wrote %s", "total", clock.timings["total"], out)
+    log.info("%-13s %7.2f s  wrote %s%s", "total", clock.timings["total"], out,
+             f" (open {out / 'report' / 'index.html'})" if report else "")
     return manifest
 
 
