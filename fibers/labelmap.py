@@ -152,6 +152,18 @@ def contours_from_labelmap(labels: np.ndarray, affine: np.ndarray,
 
     cavity_all = lab == values.cavity
     lv_all = cavity_all | (lab == values.wall)
+    # In its slice the cavity is ringed by wall; if the "cavity" label touches the background
+    # more than the "wall" label does, the two values are most likely swapped.
+    in_plane = np.zeros((3, 3, 3), bool)
+    in_plane[:, :, 1] = _CROSS
+    background = lab == 0
+    contact = {name: int((ndimage.binary_dilation(lab == v, in_plane) & background).sum())
+               for name, v in (("cavity", values.cavity), ("wall", values.wall))}
+    if contact["cavity"] > contact["wall"]:
+        raise InputError(
+            f"{source}: the cavity label ({values.cavity}) borders the background more than the "
+            f"wall label ({values.wall}) does; are the cavity and wall values swapped? Set "
+            f"[input.labels] cavity and wall to the values this segmentation uses")
     _check_long_axis(lv_all, cols, origin, normal, axis, source)
 
     has_lv = lv_all.any(axis=(0, 1))

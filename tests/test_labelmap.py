@@ -268,6 +268,14 @@ def test_missing_labels_list_the_values_present(shell):
     assert lm.present and set(contours.structure) == {"endo", "epi"}
 
 
+def test_swapped_cavity_and_wall_values(shell_map):
+    # A cavity is ringed by wall in every short-axis slice (anatomy, common practice); with
+    # the two values exchanged the "cavity" borders the background instead.
+    labels, affine = shell_map
+    with pytest.raises(InputError, match=r"cavity and wall values swapped"):
+        contours_from_labelmap(labels, affine, LabelValues(cavity=2, wall=1, rv=3), source="seg.nii")
+
+
 def test_empty_middle_slice_is_named(shell_map):
     labels, affine = shell_map
     holed = labels.copy()
