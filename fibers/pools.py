@@ -110,16 +110,6 @@ def fold_to_triangle(uv: np.ndarray) -> np.ndarray:
     return np.stack([1.0 - u - v, u, v], axis=1)
 
 
-def _to_local(axis, points: np.ndarray) -> np.ndarray:
-    """`LongAxis.to_local` through einsum, several times faster than (N, 3) @ (3, 3)."""
-    return np.einsum("ij,kj->ik", np.asarray(points, float) - axis.base_centre, axis.frame())
-
-
-def _box_map(box: Box):
-    """`Box.sample` through einsum (see `_to_local`)."""
-    return lambda unit: box.corner + np.einsum("ij,jk->ik", unit, box.edges)
-
-
 def _pick(weights: np.ndarray, unit: np.ndarray) -> np.ndarray:
     """Indices drawn with probability proportional to ``weights`` from uniforms ``unit`` (K,)."""
     cdf = np.cumsum(weights)
@@ -197,7 +187,7 @@ class EnclosedTest:
     def __init__(self, mesh: WallMesh, tags: tuple[int, ...] = (ENDO,)):
         self.axis = mesh.axis
         tri = mesh.faces[np.isin(mesh.face_tags, tags)]
-        local = _to_local(mesh.axis, mesh.points)[tri]        # (T, 3, 3): x1, x2, z
+        local = mesh.axis.to_local(mesh.points)[tri]        # (T, 3, 3): x1, x2, z
         xy, self._z = local[:, :, :2], local[:, :, 2]
         self._a = xy[:, 0]
         self._u, self._v = xy[:, 1] - xy[:, 0], xy[:, 2] - xy[:, 0]
@@ -229,7 +219,7 @@ class EnclosedTest:
 
     def __call__(self, points: np.ndarray) -> np.ndarray:
         """Inside flags (K,) bool for points (K, 3), mm."""
-        local = _to_local(self.axis, np.asarray(points, float).reshape(-1, 3))
+        local = self.axis.to_local(np.asarray(points, float).reshape(-1, 3))
         inside = np.zeros(len(local), bool)
         ext = self._lo + self._shape * self._cell
         cand = np.flatnonzero((local[:, 2] < 0.0) & np.all(local[:, :2] >= self._lo, axis=1)
@@ -394,14 +384,14 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
                          "background: set pools.cavity and pools.background to 0 or check the "
                          "face tags")
     cavity = EnclosedTest(mesh) if settings.cavity or settings.background else None
-    endo_local = _to_local(mesh.axis, mesh.points[mesh.face_nodes(ENDO)])
+    endo_local = mesh.axis.to_local(mesh.points[mesh.face_nodes(ENDO)])
     lo = endo_local.min(axis=0)
     hi = np.r_[endo_local[:, :2].max(axis=0), 0.0]
     lo[2] = min(lo[2], -1e-9)
     frame = mesh.axis.frame()
     cav_box = Box(corner=mesh.axis.to_world(lo), edges=(hi - lo)[:, None] * frame)
     points = _rejection(rngs["cavity"], int(settings.cavity), settings.sampler,
-                        _box_map(cav_box), cavity, 0.5)
+                        cav_box.sample, cavity, 0.5)
     pools["cavity"] = Pool("cavity", {"points": points})
     log.debug("pool cavity: %d points", len(points))
 
@@ -414,7 +404,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
         in_wall = EnclosedTest(mesh, tags=(ENDO, EPI))
     wall_share = float(np.abs(volumes).sum()) / max(box.volume, 1e-300)
     points = _rejection(rngs["background"], int(settings.background), settings.sampler,
-                        _box_map(box), lambda p: ~in_wall(p), max(1.0 - wall_share, 0.05))
+                        box.sample, lambda p: ~in_wall(p), max(1.0 - wall_share, 0.05))
     depth = segments.depth_below_base(points, mesh.axis)
     region = np.where(depth < 0.0, ABOVE_BASE,
                       np.where(cavity(points) if len(points) else False, CAVITY, OUTSIDE))
