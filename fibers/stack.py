@@ -81,6 +81,13 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
         _, sv, vt = np.linalg.svd(pts - centre, full_matrices=False)
         off = sv[2] / np.sqrt(len(pts))
         if off > MAX_OUT_OF_PLANE_MM:
+            height = (pts - centre) @ vt[2]
+            far = np.abs(height) > 0.5 * np.abs(height).max()
+            if far.mean() > 0.8 and (height > 0).mean() > 0.2 and (height < 0).mean() > 0.2:
+                gap = height[height > 0].mean() - height[height < 0].mean()
+                raise InputError(
+                    f"{src}, slice {k}: the points lie in two planes {gap:.1f} mm apart; one slice "
+                    f"id was given to two slices: give each slice its own id")
             raise InputError(f"{src}, slice {k}: points lie {off:.1f} mm (RMS) off a plane; each slice must be one short-axis plane")
         normals[k], centres[k] = vt[2], centre
     ref = normals[ids[0]]

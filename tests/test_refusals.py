@@ -206,3 +206,21 @@ def test_collinear_contour(tmp_path, capsys):
     t = np.linspace(0, 1, len(rows))
     pts[rows] = a + t[:, None] * (b - a)
     assert "encloses almost no area" in _run(tmp_path, capsys, contours=_edit(c, points=pts))
+
+
+def test_one_slice_id_for_two_slices(tmp_path, capsys):
+    _, c = _good()
+    ids = np.unique(c.slice_id)
+    sid = c.slice_id.copy()
+    sid[sid == ids[3]] = ids[2]
+    msg = _run(tmp_path, capsys, contours=_edit(c, slice_id=sid))
+    assert "two planes 8.0 mm apart" in msg and f"slice {ids[2]}" in msg
+
+
+def test_warped_slice(tmp_path, capsys):
+    lv, c = _good()
+    rows = c.slice_id == np.unique(c.slice_id)[3]
+    pts = c.points.copy()
+    local = lv.to_local(pts[rows])
+    pts[rows] += np.outer(0.01 * (local[:, 0] ** 2 - local[:, 1] ** 2), lv.long_axis)  # a saddle
+    assert "off a plane" in _run(tmp_path, capsys, contours=_edit(c, points=pts))
