@@ -270,7 +270,7 @@ def _unit_with_fallback(primary, fallback, *, scale=None):
     than ``_BLEND_LOW * scale`` are replaced by the fallback, rows longer than
     ``_BLEND_HIGH * scale`` are kept, with a cubic smoothstep in between.
     """
-    norm = np.linalg.norm(primary, axis=1)
+    norm = _row_norm(primary)
     if scale is None:
         scale = float(np.median(norm))
     if not np.isfinite(scale) or scale <= 0.0:
@@ -280,7 +280,7 @@ def _unit_with_fallback(primary, fallback, *, scale=None):
     unit = primary / np.where(norm > 0, norm, 1.0)[:, None]
     blended = w[:, None] * unit + (1.0 - w)[:, None] * fallback
     # If primary and fallback point nearly opposite, the blend can cancel; take the heavier one.
-    cancelled = np.linalg.norm(blended, axis=1) < 0.25
+    cancelled = _row_norm(blended) < 0.25
     blended[cancelled] = np.where((w[cancelled] >= 0.5)[:, None], unit[cancelled],
                                   fallback[cancelled])
     return _normalise(blended, fallback)
@@ -289,14 +289,19 @@ def _unit_with_fallback(primary, fallback, *, scale=None):
 def _normalise(v, fallback):
     """Unit rows of ``v``; rows of (near) zero length become ``fallback`` (a row or a vector)."""
     v = np.asarray(v, dtype=float)
-    norm = np.linalg.norm(v, axis=1)
+    norm = _row_norm(v)
     ok = norm > 1e-12
-    out = np.empty_like(v)
-    out[ok] = v[ok] / norm[ok, None]
+    # divide every row (no boolean gathers on the hot path), then mend the few short ones
+    out = v / np.where(ok, norm, 1.0)[:, None]
     if not np.all(ok):
         fb = np.broadcast_to(np.asarray(fallback, float), v.shape)
         out[~ok] = fb[~ok] / np.linalg.norm(fb[~ok], axis=1)[:, None]
     return out
+
+
+def _row_norm(v):
+    """Row lengths (N,), by einsum: several times faster than np.linalg.norm(axis=1)."""
+    return np.sqrt(np.einsum("ij,ij->i", v, v))
 
 
 def _unit_vector(v, name):
