@@ -58,14 +58,15 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
     epi_idx = [add(r) for r in epi_rings]
     base_idx = [endo_idx[-1]] + [add(r) for r in base_rings[1:-1]] + [epi_idx[-1]]
     local = np.concatenate(blocks)
-    base_angles = [endo_rings[-1][1]] + [r[1] for r in base_rings[1:-1]] + [epi_rings[-1][1]]
 
+    # the base rings begin and end with the endo and epi rims (their nodes are shared)
     tri = {
         ENDO: _stitch_all(endo_idx, [r[1] for r in endo_rings]),
         EPI: _stitch_all(epi_idx, [r[1] for r in epi_rings]),
-        BASE: _stitch_all(base_idx, base_angles),
+        BASE: _stitch_all(base_idx, [r[1] for r in base_rings]),
     }
-    # orient each surface out of the wall (endo: into the cavity, epi: outward, base: toward +z)
+    # hand gmsh consistently oriented surfaces (out of the wall: endo into the cavity, epi
+    # outward, base toward +z); the final faces come from the tetrahedra themselves
     centre = np.array([0.0, 0.0, surfaces.systems["epi"][0]])
     for tag, faces in tri.items():
         n, a = meshtools.triangle_normals(local, faces)

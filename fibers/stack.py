@@ -122,7 +122,8 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
 
     # sense of the axis: base is the end with endocardial contours and larger epicardia
     has_endo = np.array([("endo", k) in groups for k in order])
-    epi_area = np.array([_area2d(groups[("epi", k)][0], axis) for k in order])
+    in_plane = _plane_frame(axis)
+    epi_area = np.array([abs(_signed_area(groups[("epi", k)][0] @ in_plane.T)) for k in order])
     n3 = max(1, len(order) // 3)
     score = (epi_area[-n3:].mean() - epi_area[:n3].mean()) / max(epi_area.mean(), 1e-9)
     score += has_endo[-n3:].mean() - has_endo[:n3].mean()
@@ -149,10 +150,9 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     if extent < MIN_EXTENT_MM:
         raise InputError(f"{src}: the stack spans only {extent:.1f} mm from base to apex; a wall needs at least {MIN_EXTENT_MM:.0f} mm")
 
-    # per-slice contour checks, in the plane of the stack
-    e1 = _perpendicular(axis)
-    e2 = np.cross(axis, e1)
-    plane = np.stack([e1, e2])
+    # per-slice contour checks, in the plane of the stack (axis now points apex to base)
+    plane = _plane_frame(axis)
+    e1 = plane[0]
     slices_2d = {}
     for k in order:
         entry = {}
@@ -264,8 +264,10 @@ def _signed_area(xy: np.ndarray) -> float:
     return 0.5 * float(np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y))
 
 
-def _area2d(points: np.ndarray, axis: np.ndarray) -> float:
-    return abs(_signed_area(points @ np.stack([_perpendicular(axis), np.cross(axis, _perpendicular(axis))]).T))
+def _plane_frame(axis: np.ndarray) -> np.ndarray:
+    """Rows e1, e2 (2, 3) of a frame in the plane normal to ``axis``, right-handed about it."""
+    e1 = _perpendicular(axis)
+    return np.stack([e1, np.cross(axis, e1)])
 
 
 def _centroid2d(xy: np.ndarray) -> np.ndarray:

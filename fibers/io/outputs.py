@@ -93,14 +93,15 @@ def write_surfaces(path: Path, result) -> None:
     remap[used] = np.arange(len(used))
     tri = remap[wall.faces]
     pts = [wall.points[used]]
-    n0 = len(used)
+    n0 = next_index = len(used)
     lines, residual, slice_ids, structure = [], [], [], []
     for sl in result.stack.slices:
         for s, code in (("endo", 1), ("epi", 2)):
             c = getattr(sl, s)
             if c is None:
                 continue
-            idx = n0 + sum(len(p) for p in pts[1:]) + np.arange(len(c))
+            idx = next_index + np.arange(len(c))
+            next_index += len(c)
             pts.append(c)
             lines.append(np.concatenate([[len(c) + 1], idx, idx[:1]]))
             residual.append(surf.distance(s, c))
