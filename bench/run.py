@@ -31,10 +31,11 @@ def one(size: float, with_pools_bench: bool) -> dict:
     sys.path.insert(0, str(HERE))
     from fem_bench import fem_rows
 
-    from fibers import pipeline, synthetic
+    from fibers import pipeline
+    from fibers.demo import ventricle
     from fibers.io import case as case_io, outputs
 
-    lv = synthetic.demo_subject()
+    lv = ventricle.demo_subject()
     contours, _ = lv.sample_stack(noise=0.4, shift=2.0, seed=11)
     case = case_io.resolve_case({"input": {"contours": "demo.csv"}, "mesh": {"size": size}})
     case = replace(case, landmarks=lv.landmarks())

@@ -133,19 +133,20 @@ def _override(case, args):
 
 
 def _demo(args) -> int:
-    from fibers import pipeline, synthetic
+    from fibers import pipeline
+    from fibers.demo import ventricle
     from fibers.io import case as case_io
     from fibers.io.contours import write_contours
 
-    lv = synthetic.demo_subject()
+    lv = ventricle.demo_subject()
     with tempfile.TemporaryDirectory(prefix="fibers-demo-") as tmp:
         tmp = Path(tmp)
         include = {}
         if args.labelmap:
-            from fibers import phantom
+            from fibers.demo import voxels
             from fibers.io.labelmap import write_labelmap
 
-            labels, affine = phantom.voxelise(lv)
+            labels, affine = voxels.voxelise(lv)
             write_labelmap(tmp / "labelmap.nii.gz", labels, affine)
             text = case_io.case_text(landmarks=None).replace('contours = "contours.csv"', 'labelmap = "labelmap.nii.gz"')
             include["input/labelmap.nii.gz"] = tmp / "labelmap.nii.gz"

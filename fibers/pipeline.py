@@ -202,16 +202,16 @@ def _read_inputs(case):
     if case.contours is not None:
         contours = contour_io.read_contours(case.contours)
         return contours, case.landmarks, None, [_provenance(case.contours)]
-    from fibers import labelmap
+    from fibers import masks
     from fibers.io import labelmap as labelmap_io
 
     labels, affine = labelmap_io.read_labelmap(case.labelmap, frame=case.frame)
     labels_cfg = dict(case.labels)
     if labels_cfg.get("rv") == 0:  # rv = 0 in the case file: the map has no RV label
         labels_cfg["rv"] = None
-    values = labelmap.LabelValues(**labels_cfg)
-    contours, found, box = labelmap.contours_from_labelmap(labels, affine, values, source=case.labelmap.name)
-    spacing = float(np.linalg.norm(np.asarray(affine)[:3, labelmap.slice_axis(affine)]))
+    values = masks.LabelValues(**labels_cfg)
+    contours, found, box = masks.contours_from_labelmap(labels, affine, values, source=case.labelmap.name)
+    spacing = float(np.linalg.norm(np.asarray(affine)[:3, masks.slice_axis(affine)]))
     contours = replace(contours, slice_thickness=spacing)
     # the user's explicit points win over the ones read off the label map
     landmarks = case.landmarks if case.landmarks.present else found

@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from fibers import mesh, stack, surfaces, synthetic
+from fibers import mesh, stack, surfaces
+from fibers.demo import ventricle
 from fibers.types import BASE, ENDO, EPI, RawContours
 
 SIZE = 2.5  # mm; coarse enough for speed, fine enough that the mesh error is far below 3 %
@@ -24,7 +25,7 @@ def _volumes_ml(wall):
 
 @pytest.fixture(scope="module")
 def exact_oblique():
-    lv = synthetic.spheroid_shell(seed=4)
+    lv = ventricle.spheroid_shell(seed=4)
     contours, _ = lv.sample_stack(spacing=8.0, seed=2)
     return lv, contours, _build(contours)
 
@@ -43,7 +44,7 @@ def test_oblique_frame_same_volumes_and_base_normal(exact_oblique):
     # Rigid motion leaves volumes unchanged (elementary geometry); the base plane is normal to
     # the true long axis within 2 degrees (issue #2).
     lv, _, (st, _, wall) = exact_oblique
-    upright = synthetic.spheroid_shell()
+    upright = ventricle.spheroid_shell()
     contours, _ = upright.sample_stack(spacing=8.0, seed=2)
     myo0, cav0 = _volumes_ml(_build(contours)[2])
     myo, cav = _volumes_ml(wall)
@@ -63,7 +64,7 @@ def test_oblique_frame_same_volumes_and_base_normal(exact_oblique):
 def test_noisy_shifted_stack_volumes(exact_oblique):
     # Noise 0.5 mm and breath-hold shifts of 2.5 mm: alignment and the smoothing fit keep
     # the volumes within 3 % of the closed form (issue #2's held-out condition).
-    lv = synthetic.spheroid_shell(endo=(24.0, 55.0), epi=(33.0, 63.0), base_z=18.0, seed=9)
+    lv = ventricle.spheroid_shell(endo=(24.0, 55.0), epi=(33.0, 63.0), base_z=18.0, seed=9)
     contours, shifts = lv.sample_stack(spacing=8.0, noise=0.5, shift=2.5, seed=5)
     assert np.abs(shifts).max() > 1.0  # the shifts are really there
     myo, cav = _volumes_ml(_build(contours)[2])

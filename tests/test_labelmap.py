@@ -17,9 +17,9 @@ from scipy.spatial import cKDTree
 
 from fibers.errors import InputError
 from fibers.io.labelmap import read_labelmap, write_labelmap
-from fibers.labelmap import LabelValues, contours_from_labelmap, field_of_view, slice_axis
-from fibers.phantom import voxelise
-from fibers.synthetic import demo_subject, spheroid_shell
+from fibers.masks import LabelValues, contours_from_labelmap, field_of_view, slice_axis
+from fibers.demo.voxels import voxelise
+from fibers.demo.ventricle import demo_subject, spheroid_shell
 
 
 @pytest.fixture(scope="module")

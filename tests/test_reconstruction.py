@@ -7,7 +7,8 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from fibers import pipeline, synthetic
+from fibers import pipeline
+from fibers.demo import ventricle
 from fibers.io.case import resolve_case
 
 RI, RO = 22.0, 32.0
@@ -15,7 +16,7 @@ RI, RO = 22.0, 32.0
 
 @pytest.fixture(scope="module")
 def rebuilt():
-    lv = synthetic.spheroid_shell(endo=(RI, RI), epi=(RO, RO), base_z=0.0, seed=6)
+    lv = ventricle.spheroid_shell(endo=(RI, RI), epi=(RO, RO), base_z=0.0, seed=6)
     contours, _ = lv.sample_stack(spacing=8.0, noise=0.2, seed=2)
     case = resolve_case({"input": {"contours": "shell.csv"}, "mesh": {"size": 2.0},
                          "pools": {"myocardium": 20000, "cavity": 2000, "background": 2000,

@@ -5,14 +5,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from fibers import cli, synthetic
+from fibers import cli
+from fibers.demo import ventricle
 from fibers.io.case import case_text
 from fibers.io.contours import write_contours
 from fibers.types import RawContours
 
 
 def _good():
-    lv = synthetic.spheroid_shell(seed=1)
+    lv = ventricle.spheroid_shell(seed=1)
     contours, _ = lv.sample_stack(spacing=8.0, seed=0)
     return lv, contours
 
@@ -104,7 +105,7 @@ def test_tilted_slice(tmp_path, capsys):
     sid = np.unique(c.slice_id)[4]
     rows = c.slice_id == sid
     centre = c.points[rows].mean(0)
-    turn = synthetic.rotation_about(np.cross(lv.long_axis, [1.0, 0, 0]), np.radians(25))
+    turn = ventricle.rotation_about(np.cross(lv.long_axis, [1.0, 0, 0]), np.radians(25))
     pts = c.points.copy()
     pts[rows] = (pts[rows] - centre) @ turn.T + centre
     msg = _run(tmp_path, capsys, contours=_edit(c, points=pts))

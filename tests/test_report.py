@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from fibers import cli, report
+from fibers.report import reading, segments
 from fibers.errors import InputError
 
 SAMPLES = Path(__file__).resolve().parent.parent / "output_samples"
@@ -118,23 +119,23 @@ def test_inputs_listed_with_sha256(built):
 def test_basal_thickness_matches_the_synthetic_closed_form(built):
     """Mean thickness of the basal segments against the demo subject's own radii.
 
-    Source: the closed-form radius law of ``fibers.synthetic.SyntheticLV`` (elementary geometry:
+    Source: the closed-form radius law of ``fibers.ventricle.SyntheticLV`` (elementary geometry:
     thickness = epicardial minus endocardial radius at one height and angle), averaged over each
     basal sector; basal sectors are 60 degrees wide from the septal bisector, 1 anterior ... 6
     anterolateral (Cerqueira et al., Circulation 2002). The report measures the shortest distance
     from the epicardium to the endocardium, which on the near-vertical basal wall is the radial
     thickness to within the contour noise and the faceting of a 3 mm mesh.
     """
-    from fibers import synthetic
+    from fibers.demo import ventricle
 
-    lv = synthetic.demo_subject()
+    lv = ventricle.demo_subject()
     ant, inf = lv.septum_angles
     bisector = 0.5 * (ant + inf)            # the shorter arc: 120 degrees apart
     toward_inferior = np.sign(inf - ant)    # angles from the bisector grow toward the inferior insertion
     cavity = lv.base_z + lv.endo[1]         # base plane to the endocardial apex, mm
     z = np.linspace(lv.base_z - cavity / 3, lv.base_z, 60)[:, None]
-    build = report._load(built, report._read_manifest(built))
-    table = report._segment_table(build)
+    build = reading.load_build(built, reading.read_manifest(built))
+    table = reading.segment_table(build)
     for k, centre in zip(range(1, 7), (-90, -30, 30, 90, 150, -150)):
         psi = np.radians(np.linspace(centre - 29, centre + 29, 59))[None, :]
         t = np.radians(bisector) + toward_inferior * psi
@@ -151,18 +152,18 @@ def test_bullseye_layout_is_the_published_one():
     numbering counter-clockwise; apical 13 top, 14 septal left, 15 bottom, 16 lateral right; 17 centre."""
     theta = np.array([90, 150, 210, 270, 330, 30, 90, 150, 210, 270, 330, 30, 90, 180, 270, 0, 0], float)
     radius = np.array([3.5] * 6 + [2.5] * 6 + [1.5] * 4 + [0.2])
-    assert report._expected_segment(theta, radius).tolist() == list(range(1, 18))
+    assert reading.expected_segment(theta, radius).tolist() == list(range(1, 18))
     for k in range(1, 18):
-        t, r = report._segment_centre(k)
-        assert report._expected_segment(np.array([t]), np.array([r]))[0] == k
+        t, r = segments.segment_centre(k)
+        assert reading.expected_segment(np.array([t]), np.array([r]))[0] == k
 
 
 def test_labels_of_the_build_follow_the_layout(built):
     """The labels the epicardial pool carries sit where the published layout puts them."""
-    build = report._load(built, report._read_manifest(built))
+    build = reading.load_build(built, reading.read_manifest(built))
     epi = build.pools["epi"]
-    theta, radius = report._bullseye_place(build, epi["points"])
-    agree = np.mean(report._expected_segment(theta, radius) == epi["aha_segment"])
+    theta, radius = reading.bullseye_place(build, epi["points"])
+    agree = np.mean(reading.expected_segment(theta, radius) == epi["aha_segment"])
     assert agree > 0.98
 
 
@@ -174,16 +175,16 @@ def test_helix_measured_from_vectors():
     e_long = np.tile([0.0, 0.0, 1.0], (len(a), 1))
     fiber = np.cos(a)[:, None] * e_circ + np.sin(a)[:, None] * e_long
     for sign in (1.0, -1.0):
-        got = report._measured_helix({"fiber": sign * fiber, "e_long": e_long, "e_circ": e_circ})
+        got = reading.measured_helix({"fiber": sign * fiber, "e_long": e_long, "e_circ": e_circ})
         np.testing.assert_allclose(got, np.degrees(a), atol=1e-9)
 
 
 def test_law_from_the_manifest():
     """The linear law and the table law read back from the parameters (DESIGN.md section 3.2)."""
     linear = {"parameters": {"fibers": {"helix_endo": 50.0, "helix_epi": -70.0, "helix_profile": None}}}
-    np.testing.assert_allclose(report._law(linear, [0.0, 0.25, 1.0, 1.5]), [50.0, 20.0, -70.0, -70.0])
+    np.testing.assert_allclose(reading.helix_law(linear, [0.0, 0.25, 1.0, 1.5]), [50.0, 20.0, -70.0, -70.0])
     table = {"parameters": {"fibers": {"helix_profile": [[0.1, 60.0], [0.5, 0.0], [0.9, -60.0]]}}}
-    np.testing.assert_allclose(report._law(table, [0.0, 0.3, 0.7, 1.0]), [60.0, 30.0, -30.0, -60.0])
+    np.testing.assert_allclose(reading.helix_law(table, [0.0, 0.3, 0.7, 1.0]), [60.0, 30.0, -30.0, -60.0])
 
 
 def test_redraw_rewrites_the_report(built, tmp_path):
@@ -237,7 +238,7 @@ def test_report_notes_missing_labels(built, tmp_path):
 def test_view_without_display_lists_the_files(built, monkeypatch):
     monkeypatch.delenv("DISPLAY", raising=False)
     monkeypatch.delenv("WAYLAND_DISPLAY", raising=False)
-    monkeypatch.setattr(report.sys, "platform", "linux")
+    monkeypatch.setattr(reading.sys, "platform", "linux")
     seen = []
 
     class Keep(logging.Handler):

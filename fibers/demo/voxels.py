@@ -16,8 +16,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from fibers.labelmap import LabelValues
-from fibers.synthetic import SyntheticLV, rotation_about
+from fibers.masks import LabelValues
+from fibers.demo.ventricle import SyntheticLV, rotation_about
 
 
 def voxelise(lv: SyntheticLV, *, spacing=(1.5, 1.5, 8.0), rv: bool = True, margin: float = 15.0,

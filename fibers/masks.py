@@ -31,7 +31,7 @@ Choices made here
   direction (the base is the end of the stack whose epicardial cross-section is larger). Going
   counter-clockwise, the arc starts at the inferior insertion and ends at the anterior one: from
   the anterior insertion through the septum to the inferior one is counter-clockwise as seen from
-  the apex, the usual anatomy, as in ``fibers.synthetic.SyntheticLV.septum_angles``. The per-slice ends are
+  the apex, the usual anatomy, as in ``fibers.demo.ventricle.SyntheticLV.septum_angles``. The per-slice ends are
   combined by their circular median and placed on the epicardial contour of the most basal slice
   with RV contact.
 """
