@@ -1,12 +1,36 @@
 """Rule-based myofiber architecture: fiber, sheet and sheet-normal directions from angle laws.
 
-Given the local frame of :mod:`fibers.coordinates` and the transmural depth, the fiber is turned
-from ``e_circ`` toward ``e_long`` by the helix angle, ``fiber = cos(a) e_circ + sin(a) e_long``
-(DESIGN.md section 4). The sheet starts as ``e_rad`` and is turned about the fiber by the
-transverse angle ``b`` (right-handed): ``sheet = cos(b) e_rad + sin(b) (fiber x e_rad)``.
-``sheet_normal = fiber x sheet`` completes a right-handed orthonormal triad. This is the rule
-of the Laplace-Dirichlet rule-based method (Bayer et al., Ann Biomed Eng 2012) restricted to the
-left ventricle.
+The rule (one function, `point_triad`, serves the nodes, the elements and any sample point):
+
+1. **Depth** ``d``: the fraction of the wall thickness (``law.depth = "thickness"``, default)
+   or the Laplace transmural value (``"laplace"``), 0 at the endocardium, 1 at the epicardium.
+2. **Angles** at ``d``: helix ``a``, imbrication ``i`` and sheet angle ``b``, each linear from
+   its endocardial to its epicardial value or read from a depth table; helix and sheet may add
+   an offset over the apicobasal position (a table) and a septal offset weighted by
+   ``w = (1 + cos t) / 2``, ``t`` the circumferential angle from the septal bisector (1 on
+   the bisector, 0 opposite it, smooth everywhere).
+3. **Frame** the angles are laid out in: the wall normal ``n = e_rad`` and, in it tangent
+   plane, a circumferential direction ``c`` and ``l = n x c``. With ``law.helix_frame =
+   "short_axis"`` (default) ``c`` is the short-axis circumferential direction of imaging,
+   ``axis x n`` normalised: orthogonal to the long axis and to the wall normal. Where the
+   normal comes within 30 degrees of the axis (the apical cap, segment 17 and its rim), ``axis
+   x n`` loses its direction; there ``c`` is blended (cubic smoothstep on ``|axis x n|`` from 0.5
+   down to 0.2) into the direction about the axis at the point's own position, ``axis x (x -
+   base_centre)`` projected on the tangent plane. This is the smoothing rule of segment 17:
+   it depends on the position only, so nodes, elements and sample points agree, and the field
+   is smooth everywhere except on the long axis itself, where every left-ventricular frame
+   winds once (see `fibers.coordinates.frame_quality`). With ``"laplace"``, ``c = e_circ`` and
+   ``l = e_long`` (the Laplace-Dirichlet frame of Bayer et al., Ann Biomed Eng 2012).
+4. **Triad**: ``fiber = cos(i) (cos(a) c + sin(a) l) + sin(i) n``; the sheet starts as the part
+   of ``n`` orthogonal to the fiber, ``s0``, and turns about the fiber by ``b`` (right-handed):
+   ``sheet = cos(b) s0 + sin(b) (fiber x s0)``; ``sheet_normal = fiber x sheet``. With
+   ``i = b = 0`` the sheet is ``e_rad``.
+
+Angles measured back from the vectors (output fields): ``helix_angle`` in the Laplace frame,
+``atan2(f . e_long, f . e_circ)`` (the angle of earlier versions), ``helix_angle_sax`` in the
+short-axis frame of step 3, ``atan2(f . l, f . c)``, and ``imbrication_angle``
+``asin(f . e_rad)``. ``sheet_angle`` and ``dispersion`` (the kappa of Gasser, Ogden and
+Holzapfel, J R Soc Interface 2006, linear over depth) are the prescribed values.
 """
 
 from __future__ import annotations
@@ -19,6 +43,13 @@ from fibers.config import FiberLaw
 from fibers.coordinates import CardiacCoordinates
 from fibers.errors import InputError
 
+# |axis x n| between these values blends the short-axis direction into the direction about
+# the axis at the point (sin 11.5 and sin 30 degrees).
+_SAX_LOW, _SAX_HIGH = 0.2, 0.5
+
+TRIAD_FIELDS = ("fiber", "sheet", "sheet_normal", "helix_angle", "helix_angle_sax",
+                "imbrication_angle", "sheet_angle", "dispersion")
+
 
 @dataclass(frozen=True)
 class Architecture:
@@ -28,123 +59,270 @@ class Architecture:
     ----------
     fiber, sheet, sheet_normal : ndarray (N, 3)
         Nodal right-handed orthonormal triad.
-    helix_angle, transverse_angle : ndarray (N,), degrees
+    helix_angle, helix_angle_sax, imbrication_angle, sheet_angle : ndarray (N,), degrees
+        See the module docstring.
+    dispersion : ndarray (N,)
+        Fiber dispersion kappa, 0 to 1/3.
     cell_fiber, cell_sheet, cell_sheet_normal : ndarray (M, 3)
-        The triad per element, from the element frame and depth.
+        The triad per element, from the element frame at the centroid.
     """
 
     fiber: np.ndarray
     sheet: np.ndarray
     sheet_normal: np.ndarray
     helix_angle: np.ndarray
-    transverse_angle: np.ndarray
+    helix_angle_sax: np.ndarray
+    imbrication_angle: np.ndarray
+    sheet_angle: np.ndarray
+    dispersion: np.ndarray
     cell_fiber: np.ndarray
     cell_sheet: np.ndarray
     cell_sheet_normal: np.ndarray
 
 
-def helix_angle(law: FiberLaw, depth) -> np.ndarray:
-    """Helix angle at transmural depth.
+def helix_angle(law: FiberLaw, depth, *, apicobasal=None, septal_weight=None) -> np.ndarray:
+    """Prescribed helix angle at depth (and position), degrees.
 
     Parameters
     ----------
     law : FiberLaw
         Linear from ``helix_endo`` to ``helix_epi``, or the ``helix_profile`` table of
-        (depth, angle) pairs interpolated linearly (constant beyond its first and last depth).
+        (depth, angle) pairs interpolated linearly (constant beyond its first and last depth),
+        plus the ``helix_apicobasal`` offset and the weighted ``helix_septal_offset``.
     depth : array_like (K,)
-        Transmural depth, 0 endocardium, 1 epicardium; clipped to [0, 1].
+        0 endocardium, 1 epicardium; clipped to [0, 1].
+    apicobasal : array_like (K,), optional
+        0 apex, 1 base; needed when the law has an apicobasal table.
+    septal_weight : array_like (K,), optional
+        1 in the septum, 0 on the free wall (`septal_weight`); None: no septal offset.
 
     Returns
     -------
     ndarray (K,), degrees
     """
+    return _angle(depth, law.helix_endo, law.helix_epi, law.helix_profile, "helix_profile",
+                  apicobasal, law.helix_apicobasal, "helix_apicobasal",
+                  septal_weight, law.helix_septal_offset)
+
+
+def sheet_angle(law: FiberLaw, depth, *, apicobasal=None, septal_weight=None) -> np.ndarray:
+    """Prescribed sheet angle (rotation of the sheet about the fiber) at depth, degrees.
+
+    As `helix_angle`, with ``sheet_angle_endo``/``_epi``, ``sheet_profile``,
+    ``sheet_apicobasal`` and ``sheet_septal_offset``.
+    """
+    return _angle(depth, law.sheet_angle_endo, law.sheet_angle_epi, law.sheet_profile,
+                  "sheet_profile", apicobasal, law.sheet_apicobasal, "sheet_apicobasal",
+                  septal_weight, law.sheet_septal_offset)
+
+
+def imbrication_angle(law: FiberLaw, depth) -> np.ndarray:
+    """Prescribed imbrication (tilt out of the tangent plane), linear over depth, degrees (K,)."""
     d = _depth(depth)
-    if law.helix_profile is not None:
-        table = _profile_table(law.helix_profile)
-        return np.interp(d, table[:, 0], table[:, 1])
-    return law.helix_endo + (law.helix_epi - law.helix_endo) * d
+    return law.imbrication_endo + (law.imbrication_epi - law.imbrication_endo) * d
 
 
-def transverse_angle(law: FiberLaw, depth) -> np.ndarray:
-    """Transverse (sheet) angle at transmural depth, linear from endo to epi value.
+def dispersion(law: FiberLaw, depth) -> np.ndarray:
+    """Fiber dispersion kappa (K,), linear over depth (constant when both ends are equal)."""
+    d = _depth(depth)
+    return law.dispersion_endo + (law.dispersion_epi - law.dispersion_endo) * d
+
+
+def septal_weight(circumferential) -> np.ndarray:
+    """Smooth septal weight (K,): ``(1 + cos t) / 2``, t degrees from the septal bisector."""
+    return 0.5 * (1.0 + np.cos(np.radians(np.asarray(circumferential, float))))
+
+
+def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False) -> dict:
+    """The fiber rule at any points: triad and angles from coordinates and frames there.
+
+    The one place the rule is applied: the nodes and elements (`assign`), the pools and any
+    evaluator pass the coordinates and frames they interpolated.
 
     Parameters
     ----------
+    fields : dict of str to ndarray
+        ``points`` (K, 3) mm; ``e_rad``, ``e_long``, ``e_circ`` (K, 3), re-orthonormalised here
+        (``e_rad`` kept, ``e_long`` made orthogonal to it); ``transmural`` and
+        ``thickness_fraction`` (K,) (only the one ``law.depth`` names is needed);
+        ``apicobasal`` (K,) when the law has apicobasal tables; ``circumferential`` (K,)
+        degrees from the septal bisector when ``septal``.
     law : FiberLaw
-    depth : array_like (K,)
-        Clipped to [0, 1].
+    axis : LongAxis
+        ``direction`` (apex to base) and ``base_centre``.
+    septal : bool
+        Whether ``circumferential`` is measured from the septal bisector (landmarks given);
+        otherwise septal offsets are not applied.
 
     Returns
     -------
-    ndarray (K,), degrees
+    dict of str to ndarray
+        ``fiber``, ``sheet``, ``sheet_normal`` (K, 3), a right-handed orthonormal triad;
+        ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle`` (K,)
+        degrees; ``dispersion`` (K,).
     """
-    d = _depth(depth)
-    return law.transverse_endo + (law.transverse_epi - law.transverse_endo) * d
+    need = ["points", "e_rad", "e_long", "e_circ",
+            "thickness_fraction" if law.depth == "thickness" else "transmural"]
+    if law.helix_apicobasal is not None or law.sheet_apicobasal is not None:
+        need.append("apicobasal")
+    if septal and (law.helix_septal_offset or law.sheet_septal_offset):
+        need.append("circumferential")
+    missing = [k for k in need if k not in fields or fields[k] is None]
+    if missing:
+        raise InputError(f"point_triad: fields {', '.join(missing)} are missing; pass them "
+                         "interpolated at the points")
+    n, e_long, e_circ = _orthonormal_frame(fields["e_rad"], fields["e_long"], fields["e_circ"])
+    k = len(n)
+    depth = np.asarray(fields[need[4]], float)
+    if depth.shape != (k,):
+        raise InputError(f"point_triad: depth has {depth.size} values for {k} frames; "
+                         "pass one depth per frame")
+    position = fields.get("apicobasal") if "apicobasal" in need else None
+    weight = septal_weight(fields["circumferential"]) if "circumferential" in need else None
+    a = helix_angle(law, depth, apicobasal=position, septal_weight=weight)
+    b = sheet_angle(law, depth, apicobasal=position, septal_weight=weight)
+    i = imbrication_angle(law, depth)
+    c_sax, l_sax = short_axis_frame(n, fields["points"], axis, fallback=e_circ)
+    c, l = (c_sax, l_sax) if law.helix_frame == "short_axis" else (e_circ, e_long)
+    fiber, sheet, normal = triad_from_angles(n, c, l, a, i, b)
+    dot = lambda u, v: np.einsum("ij,ij->i", u, v)  # noqa: E731
+    return {"fiber": fiber, "sheet": sheet, "sheet_normal": normal,
+            "helix_angle": np.degrees(np.arctan2(dot(fiber, e_long), dot(fiber, e_circ))),
+            "helix_angle_sax": np.degrees(np.arctan2(dot(fiber, l_sax), dot(fiber, c_sax))),
+            "imbrication_angle": np.degrees(np.arcsin(np.clip(dot(fiber, n), -1.0, 1.0))),
+            "sheet_angle": np.asarray(b, float), "dispersion": dispersion(law, depth)}
+
+
+def short_axis_frame(normal, points, axis, *, fallback) -> tuple[np.ndarray, np.ndarray]:
+    """Short-axis circumferential and longitudinal directions in the wall's tangent plane.
+
+    Parameters
+    ----------
+    normal : ndarray (K, 3)
+        Unit wall normal (``e_rad``).
+    points : ndarray (K, 3), mm
+    axis : LongAxis
+    fallback : ndarray (K, 3)
+        Unit vectors orthogonal to ``normal``, used only on the axis itself.
+
+    Returns
+    -------
+    c, l : ndarray (K, 3)
+        ``c`` the short-axis circumferential direction (step 3 of the module docstring),
+        ``l = normal x c``.
+    """
+    d = np.asarray(axis.direction, float)
+    d = d / np.linalg.norm(d)
+    sax = np.cross(d, normal)
+    s = _rows(sax)
+    about = np.cross(d, np.asarray(points, float).reshape(-1, 3) - axis.base_centre)
+    about -= np.einsum("ij,ij->i", about, normal)[:, None] * normal
+    about = _unit_or(about, fallback)
+    t = np.clip((s - _SAX_LOW) / (_SAX_HIGH - _SAX_LOW), 0.0, 1.0)
+    w = (t * t * (3.0 - 2.0 * t))[:, None]
+    c = w * sax / np.maximum(s, 1e-300)[:, None] + (1.0 - w) * about
+    # the two agree in sense (both turn right-handedly about the axis), so the blend only
+    # cancels if the wall normal tilts toward the axis; keep the heavier one there
+    weak = _rows(c) < 0.25
+    if np.any(weak):
+        c[weak] = np.where(w[weak] >= 0.5, sax[weak] / np.maximum(s[weak], 1e-300)[:, None],
+                           about[weak])
+    c = _unit_or(c, fallback)
+    return c, np.cross(normal, c)
+
+
+def triad_from_angles(normal, circ, long, helix_deg, imbrication_deg, sheet_deg):
+    """Fiber, sheet and sheet-normal (K, 3) from a frame (unit rows, ``long = normal x circ``)."""
+    a = np.radians(np.asarray(helix_deg, float))[:, None]
+    i = np.radians(np.asarray(imbrication_deg, float))[:, None]
+    b = np.radians(np.asarray(sheet_deg, float))[:, None]
+    in_plane = np.cos(a) * circ + np.sin(a) * long
+    fiber = np.cos(i) * in_plane + np.sin(i) * normal
+    # s0: the unit part of the normal orthogonal to the fiber, exactly, without a division
+    s0 = np.cos(i) * normal - np.sin(i) * in_plane
+    # Rodrigues' rotation of s0 about the fiber; s0 is orthogonal to it.
+    sheet = np.cos(b) * s0 + np.sin(b) * np.cross(fiber, s0)
+    return fiber, sheet, np.cross(fiber, sheet)
 
 
 def orient(e_rad, e_long, e_circ, depth, law: FiberLaw):
-    """Fiber, sheet and sheet-normal directions from a local frame and a depth.
+    """The rule in a given frame, without positions: laid out in the Laplace frame.
 
-    Works on any frame arrays, e.g. frames interpolated to sample points: the frame is first
-    re-orthonormalised (``e_rad`` normalised, ``e_long`` made orthogonal to it and normalised,
-    ``e_circ = e_long x e_rad``). The given ``e_circ`` only serves as a fallback where the
-    given ``e_rad`` or ``e_long`` is degenerate (zero, or ``e_long`` parallel to ``e_rad``).
-
-    Parameters
-    ----------
-    e_rad, e_long, e_circ : ndarray (K, 3)
-    depth : ndarray (K,)
-        Transmural depth in [0, 1].
-    law : FiberLaw
-
-    Returns
-    -------
-    fiber, sheet, sheet_normal : ndarray (K, 3)
-        Right-handed orthonormal triad.
-    helix_deg, transverse_deg : ndarray (K,), degrees
+    Kept for callers that have no positions; `point_triad` is the full rule. Returns
+    ``fiber, sheet, sheet_normal`` (K, 3) and the prescribed ``helix_deg, sheet_deg`` (K,).
     """
-    e_rad, e_long, e_circ = _orthonormal_frame(e_rad, e_long, e_circ)
-    helix_deg = helix_angle(law, depth)
-    transverse_deg = transverse_angle(law, depth)
-    if helix_deg.shape != (len(e_rad),):
-        raise InputError(f"orient: depth has {helix_deg.size} values for {len(e_rad)} frames; "
+    n, e_long, e_circ = _orthonormal_frame(e_rad, e_long, e_circ)
+    a = helix_angle(law, depth)
+    if a.shape != (len(n),):
+        raise InputError(f"orient: depth has {a.size} values for {len(n)} frames; "
                          "pass one depth per frame")
-    a = np.radians(helix_deg)[:, None]
-    b = np.radians(transverse_deg)[:, None]
-    fiber = np.cos(a) * e_circ + np.sin(a) * e_long
-    # Rodrigues' rotation of e_rad about the fiber; e_rad is orthogonal to the fiber, so the
-    # term along the fiber vanishes.
-    sheet = np.cos(b) * e_rad + np.sin(b) * np.cross(fiber, e_rad)
-    sheet_normal = np.cross(fiber, sheet)
-    return fiber, sheet, sheet_normal, helix_deg, transverse_deg
+    b = sheet_angle(law, depth)
+    fiber, sheet, normal = triad_from_angles(n, e_circ, e_long, a, imbrication_angle(law, depth), b)
+    return fiber, sheet, normal, a, b
 
 
-def assign(coords: CardiacCoordinates, law: FiberLaw, *,
-           cell_transmural: np.ndarray | None = None) -> Architecture:
+def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = False) -> Architecture:
     """Fiber architecture at the nodes and in the elements of a mesh.
 
     Parameters
     ----------
     coords : CardiacCoordinates
     law : FiberLaw
-    cell_transmural : ndarray (M,), optional
-        Depth per element; default ``coords.cell_transmural``.
+    mesh : WallMesh
+        Node positions, elements and the long axis.
+    septal : bool
+        Whether ``coords.circumferential`` starts at the septal bisector (landmarks given).
 
     Returns
     -------
     Architecture
     """
-    fiber, sheet, normal, helix, transverse = orient(
-        coords.e_rad, coords.e_long, coords.e_circ, coords.transmural, law)
-    depth = coords.cell_transmural if cell_transmural is None else cell_transmural
-    if depth is None:
-        raise InputError("assign: coords carries no cell_transmural; pass cell_transmural= "
-                         "(one depth per element)")
-    cell_fiber, cell_sheet, cell_normal, _, _ = orient(
-        coords.cell_e_rad, coords.cell_e_long, coords.cell_e_circ, depth, law)
-    return Architecture(fiber=fiber, sheet=sheet, sheet_normal=normal, helix_angle=helix,
-                        transverse_angle=transverse, cell_fiber=cell_fiber,
-                        cell_sheet=cell_sheet, cell_sheet_normal=cell_normal)
+    nodes = {"points": mesh.points, "e_rad": coords.e_rad, "e_long": coords.e_long,
+             "e_circ": coords.e_circ, "transmural": coords.transmural,
+             "thickness_fraction": coords.thickness_fraction, "apicobasal": coords.apicobasal,
+             "circumferential": coords.circumferential}
+    cells = {"points": mesh.points[mesh.tets].mean(axis=1), "e_rad": coords.cell_e_rad,
+             "e_long": coords.cell_e_long, "e_circ": coords.cell_e_circ,
+             "transmural": coords.cell_transmural,
+             "thickness_fraction": coords.cell_thickness_fraction,
+             "apicobasal": coords.cell_apicobasal,
+             "circumferential": coords.cell_circumferential}
+    at_nodes = point_triad(nodes, law, axis=mesh.axis, septal=septal)
+    at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal)
+    return Architecture(**{k: at_nodes[k] for k in TRIAD_FIELDS},
+                        cell_fiber=at_cells["fiber"], cell_sheet=at_cells["sheet"],
+                        cell_sheet_normal=at_cells["sheet_normal"])
+
+
+def _angle(depth, endo, epi, profile, profile_name, position, offsets, offsets_name,
+           weight, septal_offset):
+    d = _depth(depth)
+    if profile is not None:
+        table = _profile_table(profile, profile_name)
+        angle = np.interp(d, table[:, 0], table[:, 1])
+    else:
+        angle = endo + (epi - endo) * d
+    if offsets is not None:
+        if position is None:
+            raise InputError(f"fibers.{offsets_name} needs the apicobasal position at the points")
+        table = _profile_table(offsets, offsets_name, what="position")
+        angle = angle + np.interp(_depth(position), table[:, 0], table[:, 1])
+    if weight is not None and septal_offset:
+        angle = angle + septal_offset * np.asarray(weight, float)
+    return angle
+
+
+def _rows(v):
+    return np.sqrt(np.einsum("ij,ij->i", v, v))
+
+
+def _unit_or(v, fallback):
+    norm = _rows(v)
+    ok = norm > 1e-9
+    out = v / np.where(ok, norm, 1.0)[:, None]
+    if not np.all(ok):
+        out[~ok] = fallback[~ok]
+    return out
 
 
 def _depth(depth) -> np.ndarray:
@@ -155,29 +333,28 @@ def _depth(depth) -> np.ndarray:
     return np.clip(d, 0.0, 1.0)
 
 
-def _profile_table(profile) -> np.ndarray:
+def _profile_table(profile, name: str = "helix_profile", what: str = "depth") -> np.ndarray:
     try:
         table = np.asarray(profile, dtype=float)
     except (TypeError, ValueError):
-        raise InputError("fibers.helix_profile must be a list of [depth, angle] pairs of "
+        raise InputError(f"fibers.{name} must be a list of [{what}, angle] pairs of "
                          "numbers") from None
     if table.ndim != 2 or table.shape[1] != 2:
-        raise InputError(f"fibers.helix_profile must be a list of [depth, angle] pairs; got "
+        raise InputError(f"fibers.{name} must be a list of [{what}, angle] pairs; got "
                          f"an array of shape {table.shape}")
     if len(table) < 2:
-        raise InputError(f"fibers.helix_profile has {len(table)} row(s); give at least 2 "
-                         "[depth, angle] pairs")
+        raise InputError(f"fibers.{name} has {len(table)} row(s); give at least 2 "
+                         f"[{what}, angle] pairs")
     if not np.all(np.isfinite(table)):
-        raise InputError("fibers.helix_profile contains NaN or infinite values")
+        raise InputError(f"fibers.{name} contains NaN or infinite values")
     d = table[:, 0]
     if d.min() < 0.0 or d.max() > 1.0:
-        raise InputError(f"fibers.helix_profile depths must lie in [0, 1] (0 endocardium, "
-                         f"1 epicardium); got {d.min():g} to {d.max():g}")
+        raise InputError(f"fibers.{name}: {what} values must lie in [0, 1]; got {d.min():g} to {d.max():g}")
     steps = np.diff(d)
     if np.any(steps <= 0.0):
         row = int(np.flatnonzero(steps <= 0.0)[0]) + 1
-        raise InputError(f"fibers.helix_profile depths must increase strictly; row {row + 1} "
-                         f"(depth {d[row]:g}) does not follow depth {d[row - 1]:g}")
+        raise InputError(f"fibers.{name}: {what} values must increase strictly; row {row + 1} "
+                         f"({what} {d[row]:g}) does not follow {d[row - 1]:g}")
     return table
 
 

@@ -13,18 +13,55 @@ import numpy as np
 
 @dataclass(frozen=True)
 class FiberLaw:
-    """Helix and transverse angle laws over transmural depth, degrees.
+    """The rule that turns cardiac coordinates into fiber, sheet and sheet-normal, degrees.
 
-    The default is linear from the endocardial to the epicardial value. ``helix_profile``, when
-    given, replaces the linear helix law by a table of (depth, angle) pairs, depth 0 at the
-    endocardium and 1 at the epicardium, interpolated linearly.
+    Every angle is an endocardial and an epicardial value joined linearly over the depth, unless
+    a table replaces it; :mod:`fibers.architecture` documents the rule and the README the keys.
+
+    Attributes
+    ----------
+    helix_endo, helix_epi : float, degrees
+        Helix angle, measured in the frame named by ``helix_frame``.
+    sheet_angle_endo, sheet_angle_epi : float, degrees
+        Rotation of the sheet about the fiber (0: the sheet lies along the wall normal).
+    imbrication_endo, imbrication_epi : float, degrees
+        Tilt of the fiber out of the wall's tangent plane, toward the epicardium when positive.
+    helix_profile, sheet_profile : tuple of (depth, angle) pairs, optional
+        Tables over depth (0 endocardium, 1 epicardium) replacing the linear laws, interpolated
+        linearly.
+    helix_apicobasal, sheet_apicobasal : tuple of (position, degrees) pairs, optional
+        Offsets added over the apicobasal position (0 apex, 1 base), interpolated linearly.
+    helix_septal_offset, sheet_septal_offset : float, degrees
+        Added in the septum with a weight that falls smoothly to 0 on the free wall.
+    dispersion_endo, dispersion_epi : float
+        The fiber dispersion kappa of Gasser, Ogden and Holzapfel (2006), 0 (aligned) to 1/3
+        (isotropic), linear over depth.
+    depth : {"thickness", "laplace"}
+        The depth the laws use: the fraction of the wall thickness, or the Laplace solution.
+    helix_frame : {"short_axis", "laplace"}
+        The frame the helix angle is laid out in: the short-axis circumferential direction of
+        imaging, or the Laplace frame ``e_circ``, ``e_long``.
+    preset : str, optional
+        The name of the published preset the values came from.
     """
 
     helix_endo: float = 60.0
     helix_epi: float = -60.0
-    transverse_endo: float = 0.0
-    transverse_epi: float = 0.0
+    sheet_angle_endo: float = 0.0
+    sheet_angle_epi: float = 0.0
     helix_profile: tuple[tuple[float, float], ...] | None = None
+    imbrication_endo: float = 0.0
+    imbrication_epi: float = 0.0
+    sheet_profile: tuple[tuple[float, float], ...] | None = None
+    helix_apicobasal: tuple[tuple[float, float], ...] | None = None
+    sheet_apicobasal: tuple[tuple[float, float], ...] | None = None
+    helix_septal_offset: float = 0.0
+    sheet_septal_offset: float = 0.0
+    dispersion_endo: float = 0.0
+    dispersion_epi: float = 0.0
+    depth: str = "thickness"
+    helix_frame: str = "short_axis"
+    preset: str | None = None
 
 
 @dataclass(frozen=True)

@@ -27,7 +27,12 @@ Ann Biomed Eng 2012):
 
 The **circumferential** coordinate is the angle of a node about the long axis, degrees in
 [-180, 180), zero at ``zero_direction`` and increasing right-handedly about the axis (apex to
-base), i.e. in the direction of ``e_circ``.
+base), i.e. in the direction of ``e_circ``: clockwise as seen from the apex (looking from the
+apex toward the base). The segment angle of :mod:`fibers.segments` increases the same way.
+
+Two more fields: ``thickness_fraction``, the fraction of the wall thickness from the
+endocardium (exact distances to the two surfaces), and ``frame_quality``, the distance from the
+long axis, where the frame is singular (see `frame_quality`).
 
 The frame (DESIGN.md section 4): ``e_rad`` is the normalised transmural gradient, ``e_long`` the
 apicobasal gradient with its ``e_rad`` part removed, normalised, and ``e_circ = e_long x e_rad``.
@@ -84,6 +89,11 @@ class CardiacCoordinates:
         Mean of the nodal values over each element's vertices.
     cell_circumferential : ndarray (M,), degrees
         Angle of each element's centroid.
+    thickness_fraction, cell_thickness_fraction : ndarray (N,), (M,)
+        Fraction of the wall thickness from the endocardium (0) to the epicardium (1), see
+        `thickness_fraction`; per element the mean over its vertices.
+    frame_quality, cell_frame_quality : ndarray (N,), (M,), mm
+        Distance to the long axis (nodes; element centroids), see `frame_quality`.
     """
 
     transmural: np.ndarray
@@ -98,6 +108,10 @@ class CardiacCoordinates:
     cell_transmural: np.ndarray | None = None
     cell_apicobasal: np.ndarray | None = None
     cell_circumferential: np.ndarray | None = None
+    thickness_fraction: np.ndarray | None = None
+    cell_thickness_fraction: np.ndarray | None = None
+    frame_quality: np.ndarray | None = None
+    cell_frame_quality: np.ndarray | None = None
 
 
 def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
@@ -171,6 +185,7 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     cell_e_circ = np.cross(cell_e_long, cell_e_rad)
 
     centroids = points[tets].mean(axis=1)
+    thickness = thickness_fraction(mesh)
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
@@ -178,7 +193,66 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
         cell_transmural=transmural[tets].mean(axis=1),
         cell_apicobasal=position[tets].mean(axis=1),
-        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero))
+        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
+        thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1),
+        frame_quality=frame_quality(points, mesh.axis),
+        cell_frame_quality=frame_quality(centroids, mesh.axis))
+
+
+# Below this distance (mm) from the long axis the frame of the apical cap is unreliable: the
+# circumferential direction turns once around the axis, so neighbouring frames differ by
+# tens of degrees (measured on the demo ventricle, see the README, "The apex").
+FRAME_QUALITY_THRESHOLD_MM = 3.5
+
+
+def thickness_fraction(mesh: WallMesh, points: np.ndarray | None = None) -> np.ndarray:
+    """Fraction of the wall thickness through the wall, 0 on the endocardium, 1 on the epicardium.
+
+    ``d_endo / (d_endo + d_epi)`` with ``d_endo`` and ``d_epi`` the exact distances (mm) from the
+    point to the endocardial and epicardial faces of the mesh. On a spherical shell this is
+    ``(r - ri) / (ro - ri)``; unlike the Laplace depth it does not crowd toward the
+    endocardium where the wall is curved.
+
+    Parameters
+    ----------
+    mesh : WallMesh
+    points : ndarray (K, 3), mm, optional
+        Default: the mesh nodes.
+
+    Returns
+    -------
+    ndarray (K,), in [0, 1]
+    """
+    from fibers.surface_distance import distance_to_surface
+
+    points = mesh.points if points is None else np.asarray(points, float).reshape(-1, 3)
+    d_endo = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == ENDO])
+    d_epi = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == EPI])
+    total = d_endo + d_epi
+    return np.clip(d_endo / np.where(total > 0, total, 1.0), 0.0, 1.0)
+
+
+def frame_quality(points: np.ndarray, axis) -> np.ndarray:
+    """Distance (K,) mm of points from the long axis, the frame's singular line.
+
+    Every left-ventricular frame whose circumferential direction runs about the long axis is
+    singular on the axis, which crosses the wall only in the apical cap (beyond the cavity).
+    Values below `FRAME_QUALITY_THRESHOLD_MM` mark points whose frame, and so whose fibers,
+    should not be trusted.
+
+    Parameters
+    ----------
+    points : ndarray (K, 3), mm
+    axis : LongAxis
+
+    Returns
+    -------
+    ndarray (K,), mm
+    """
+    d = _unit_vector(axis.direction, "axis.direction")
+    rel = np.asarray(points, float).reshape(-1, 3) - axis.base_centre
+    off = rel - np.outer(rel @ d, d)
+    return _row_norm(off)
 
 
 def _even_along_axis(u: np.ndarray, depth: np.ndarray, patch: np.ndarray, bins: int = 64) -> np.ndarray:

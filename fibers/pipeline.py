@@ -85,7 +85,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         with clock.stage("mesh", lambda: f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"):
             wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
         with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None else "no landmarks"):
-            septum = segments.locate_septum(wall, landmarks)
+            septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
             aha = segments.label_cells(wall, septum)
         if septum is None:
             warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
@@ -93,7 +93,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
             coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector)
         with clock.stage("architecture", "fiber, sheet, sheet-normal"):
-            arch = architecture.assign(coords, case.law)
+            arch = architecture.assign(coords, case.law, wall, septal=septum is not None)
         box = box or _contour_box(contours, case.pools.margin)
         with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
             pool_set = pool_stage.build_pools(wall, coords, case.law, septum, case.pools, box=box)

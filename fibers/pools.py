@@ -7,8 +7,9 @@ Pools (DESIGN.md section 3.4) and what each point carries:
   ``transmural``, ``apicobasal`` and the nodal frame interpolated with the barycentric weights
   (the frame then re-orthonormalised), ``circumferential`` as the angle of the weighted mean of
   the nodes' unit phasors exp(i angle) (so the +-180 degree seam does not average to 0, and the
-  value agrees with the nodal field), the fiber triad and its angles from
-  `fibers.architecture.orient` at the interpolated depth, ``aha_segment`` from
+  value agrees with the nodal field), ``thickness_fraction`` interpolated, ``frame_quality``
+  at the point, the fiber triad and its angles from `fibers.architecture.point_triad` at the
+  interpolated coordinates, ``aha_segment`` from
   `fibers.segments.label_points` at the point, and ``tet``, the containing element.
 - ``endo``, ``epi``, ``base``: uniform by area on the tagged boundary faces, with the same fields
   interpolated from the face's three nodes, ``normal`` (unit, out of the wall: into the cavity on
@@ -38,7 +39,7 @@ from typing import Iterator
 
 import numpy as np
 
-from fibers import architecture, meshtools, segments
+from fibers import architecture, coordinates, meshtools, segments
 from fibers.config import Box, FiberLaw, PoolSettings
 from fibers.errors import InputError
 from fibers.locate import Locator
@@ -141,9 +142,11 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
     Returns
     -------
     dict of str to ndarray
-        ``transmural``, ``apicobasal``, ``circumferential`` (degrees), ``e_rad``, ``e_long``,
-        ``e_circ``, ``fiber``, ``sheet``, ``sheet_normal`` (K, 3), ``helix_angle``,
-        ``transverse_angle`` (degrees), ``aha_segment`` (int8).
+        ``transmural``, ``thickness_fraction``, ``apicobasal``, ``circumferential``
+        (degrees), ``e_rad``, ``e_long``, ``e_circ``, ``frame_quality`` (mm), the fields of
+        `fibers.architecture.point_triad` (``fiber``, ``sheet``, ``sheet_normal``,
+        ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle``,
+        ``dispersion``) and ``aha_segment`` (int8).
     """
     def interp(nodal):
         return np.einsum("km,km...->k...", weights, np.asarray(nodal)[nodes])
@@ -157,13 +160,15 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
     e_long = interp(coords.e_long)
     e_long = _unit_rows(e_long - np.einsum("ij,ij->i", e_long, e_rad)[:, None] * e_rad)
     e_circ = np.cross(e_long, e_rad)
-    fiber, sheet, normal, helix, transverse = architecture.orient(e_rad, e_long, e_circ,
-                                                                  transmural, law)
-    return {"transmural": transmural, "apicobasal": apicobasal, "circumferential": circ,
-            "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ, "fiber": fiber, "sheet": sheet,
-            "sheet_normal": normal, "helix_angle": np.asarray(helix, float),
-            "transverse_angle": np.asarray(transverse, float),
-            "aha_segment": segments.label_points(points, mesh, septum)}
+    out = {"transmural": transmural, "apicobasal": apicobasal, "circumferential": circ,
+           "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}
+    if coords.thickness_fraction is not None:
+        out["thickness_fraction"] = np.clip(interp(coords.thickness_fraction), 0.0, 1.0)
+    out["frame_quality"] = coordinates.frame_quality(points, mesh.axis)
+    out.update(architecture.point_triad({"points": points, **out}, law, axis=mesh.axis,
+                                        septal=septum is not None))
+    out["aha_segment"] = segments.label_points(points, mesh, septum)
+    return out
 
 
 # -- inside the cavity -----------------------------------------------------------------------

@@ -6,12 +6,22 @@ Convention (DESIGN.md section 4):
   apical end (``mesh.endo_apex``): ``h < L/3`` basal (1-6), ``L/3 <= h < 2L/3`` mid (7-12),
   ``2L/3 <= h < L`` apical (13-16), ``h >= L`` segment 17. Points a hair above the base plane
   count as basal.
-- Around the axis, angles are measured from the septal bisector (the middle of the shorter arc
-  between the two right-ventricular insertion points), positive toward the inferior insertion.
-  Basal and mid rings: six 60-degree sectors with the 2|3 (8|9) boundary on the bisector,
-  1 anterior [-120, -60), 2 anteroseptal [-60, 0), 3 inferoseptal [0, 60), 4 inferior [60, 120),
-  5 inferolateral [120, 180), 6 anterolateral [-180, -120); mid numbers add 6. Apical ring:
-  14 septal [-45, 45), 15 inferior [45, 135), 16 lateral, 13 anterior [-135, -45).
+- Around the axis, the segment angle is measured from the septal bisector (the middle of the
+  shorter arc between the two right-ventricular insertion points) right-handedly about the
+  long axis (apex to base): clockwise as seen from the apex, the sense in which
+  ``circumferential`` and ``e_circ`` of :mod:`fibers.coordinates` increase, so the segment
+  angle *is* the circumferential coordinate when landmarks are given. In the usual anatomy
+  this is toward the anterior insertion; the sector table below is written with the angle
+  ``a`` positive toward the anterior insertion (mirrored landmarks mirror it, with a warning).
+- ``sectors = "fixed"`` (default): basal and mid rings have six 60-degree sectors with the
+  2|3 (8|9) boundary on the bisector, 2 anteroseptal [0, 60), 1 anterior [60, 120),
+  6 anterolateral [120, 180), 5 inferolateral [-180, -120), 4 inferior [-120, -60),
+  3 inferoseptal [-60, 0); mid numbers add 6. Apical ring: 14 septal [-45, 45), 13 anterior
+  [45, 135), 16 lateral [135, -135), 15 inferior [-135, -45).
+- ``sectors = "insertions"``: the septal sectors end at the insertion points. The septal arc
+  [-h, h] (h half the arc) holds 2|3 (split at the bisector) and the other four sectors share
+  the rest equally; in the apical ring 14 is the septal arc and 13, 16, 15 share the rest.
+  With a 120-degree arc both rules give the same labels.
 
 Landmark checks (``locate_septum``): each insertion point must lie within
 ``max_surface_distance`` (15 mm) of the epicardial surface and no deeper than
@@ -58,6 +68,11 @@ class Septum:
         Half of the septal arc.
     anterior, inferior : ndarray (3,), mm
         The right-ventricular insertion points as given.
+    anterior_sign : float
+        +1 when the anterior insertion lies at a positive segment angle (the usual anatomy),
+        -1 for mirrored landmarks.
+    sectors : {"fixed", "insertions"}
+        How the sectors are laid out around the axis (module docstring).
     """
 
     bisector: np.ndarray
@@ -65,6 +80,8 @@ class Septum:
     half_angle: float
     anterior: np.ndarray
     inferior: np.ndarray
+    anterior_sign: float = 1.0
+    sectors: str = "fixed"
 
 
 def _in_plane(vectors: np.ndarray, direction: np.ndarray) -> np.ndarray:
@@ -98,7 +115,7 @@ def _point_triangle_distance(p: np.ndarray, tri: np.ndarray) -> np.ndarray:
 
 def locate_septum(mesh: WallMesh, landmarks: Landmarks | None, *, max_surface_distance: float = 15.0,
                   max_depth_fraction: float = 0.5, min_arc: float = 60.0,
-                  max_arc: float = 175.0) -> Septum | None:
+                  max_arc: float = 175.0, sectors: str = "fixed") -> Septum | None:
     """The septal arc from the two right-ventricular insertion points.
 
     Parameters
@@ -112,6 +129,8 @@ def locate_septum(mesh: WallMesh, landmarks: Landmarks | None, *, max_surface_di
         Refuse a landmark deeper below the base plane than this fraction of the cavity length.
     min_arc, max_arc : float, degrees
         Refuse a septal arc (the shorter arc between the projected points) outside this range.
+    sectors : {"fixed", "insertions"}
+        Sector layout (module docstring).
 
     Returns
     -------
@@ -123,6 +142,8 @@ def locate_septum(mesh: WallMesh, landmarks: Landmarks | None, *, max_surface_di
     InputError
         A landmark is off the basal epicardium, or the arc is implausible.
     """
+    if sectors not in ("fixed", "insertions"):
+        raise InputError(f"[segments] septal_sectors = {sectors!r}: must be 'fixed' or 'insertions'")
     if landmarks is None or not landmarks.present:
         return None
     axis = mesh.axis
@@ -173,15 +194,19 @@ def locate_septum(mesh: WallMesh, landmarks: Landmarks | None, *, max_surface_di
             f"the right-ventricular insertion points ({where}) run anterior -> septum -> inferior "
             "clockwise as seen from the apex, the mirror of the usual anatomy: check that the two "
             "points are not swapped; segments follow the points as given", stacklevel=2)
+    sign = 1.0 if ua @ np.cross(d, bisector) >= 0 else -1.0
     return Septum(bisector=bisector, toward_inferior=toward, half_angle=arc / 2.0,
                   anterior=np.asarray(landmarks.rv_insertion_anterior, float).reshape(3),
-                  inferior=np.asarray(landmarks.rv_insertion_inferior, float).reshape(3))
+                  inferior=np.asarray(landmarks.rv_insertion_inferior, float).reshape(3),
+                  anterior_sign=sign, sectors=sectors)
 
 
 def septal_angle(points: np.ndarray, axis: LongAxis, septum: Septum) -> np.ndarray:
-    """Angle (K,) degrees in [-180, 180) about the long axis from the septal bisector.
+    """Segment angle (K,) degrees in [-180, 180) about the long axis from the septal bisector.
 
-    Positive toward the inferior insertion. Points on the axis get 0.
+    Right-handed about the long axis (apex to base), i.e. clockwise seen from the apex: the
+    sense of ``circumferential``, which it equals when that starts at the bisector. Points on
+    the axis get 0.
 
     Parameters
     ----------
@@ -190,7 +215,8 @@ def septal_angle(points: np.ndarray, axis: LongAxis, septum: Septum) -> np.ndarr
     septum : Septum
     """
     r = np.asarray(points, float).reshape(-1, 3) - axis.base_centre
-    deg = np.degrees(np.arctan2(r @ septum.toward_inferior, r @ septum.bisector))
+    second = np.cross(_unit(axis.direction), septum.bisector)
+    deg = np.degrees(np.arctan2(r @ second, r @ septum.bisector))
     # arctan2 gives (-180, 180]; fold +180 onto -180 so sectors are half-open [lo, hi).
     return np.where(deg >= 180.0, deg - 360.0, deg)
 
@@ -210,13 +236,48 @@ def label_points(points: np.ndarray, mesh: WallMesh, septum: Septum | None) -> n
         return np.zeros(len(points), np.int8)
     h = depth_below_base(points, mesh.axis)
     length = float(depth_below_base(mesh.endo_apex, mesh.axis)[0])
-    a = septal_angle(points, mesh.axis, septum)
-    six = 1 + np.mod(np.floor((a + 120.0) / 60.0).astype(np.int64), 6)
-    four = 13 + np.mod(np.floor((a + 135.0) / 90.0).astype(np.int64), 4)
+    return labels_from_angles(septal_angle(points, mesh.axis, septum), h / length, septum)
+
+
+def labels_from_angles(angle, depth_fraction, septum: Septum) -> np.ndarray:
+    """AHA segment (K,) int8 from the segment angle and the depth below the base.
+
+    Parameters
+    ----------
+    angle : ndarray (K,), degrees
+        Segment angle (`septal_angle`), equal to ``circumferential`` when that starts at the
+        septal bisector; one may be used for the other.
+    depth_fraction : ndarray (K,)
+        Long-axis depth below the base plane over the cavity length (1 at the cavity's apex).
+    septum : Septum
+    """
+    a = np.asarray(angle, float) * septum.anterior_sign   # positive toward the anterior insertion
+    h = np.asarray(depth_fraction, float)
+    ring_a, apical_a = a, a
+    if septum.sectors == "insertions":
+        ring_a = _stretch_septum(a, septum.half_angle, 60.0)
+        apical_a = _stretch_septum(a, septum.half_angle, 45.0)
+    six = 1 + np.mod(4 - np.floor((ring_a + 180.0) / 60.0).astype(np.int64), 6)
+    four = 16 - np.mod(np.floor((apical_a + 225.0) / 90.0).astype(np.int64), 4)
+    length = 1.0
     labels = np.where(h < length / 3.0, six,
                       np.where(h < 2.0 * length / 3.0, six + 6,
                                np.where(h < length, four, 17)))
     return labels.astype(np.int8)
+
+
+def _stretch_septum(a, half, fixed_half):
+    """Map angles so the septal arc [-half, half] becomes [-fixed_half, fixed_half] (piecewise linear)."""
+    inside = np.abs(a) <= half
+    free = np.mod(a - half, 360.0)                       # 0 at the anterior insertion
+    out = fixed_half + free * (360.0 - 2 * fixed_half) / (360.0 - 2 * half)
+    out = np.where(inside, a * fixed_half / half, out)
+    return np.mod(out + 180.0, 360.0) - 180.0
+
+
+def _unit(v):
+    v = np.asarray(v, float)
+    return v / np.linalg.norm(v)
 
 
 def label_cells(mesh: WallMesh, septum: Septum | None) -> np.ndarray:

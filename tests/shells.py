@@ -16,23 +16,24 @@ def spheroid_shell(inner=(20.0, 20.0), outer=(30.0, 30.0), *, size=3.0, rotation
                    translation=None) -> WallMesh:
     """Mesh of the shell between two coaxial spheroids below z = 0.
 
-    ``inner`` and ``outer`` are (equatorial radius, polar half-axis) in mm. Equal numbers give
-    spheres (the hemispherical shell of DESIGN section 5). ``rotation`` (3x3) and ``translation``
+    ``inner`` and ``outer`` are (equatorial radius, polar half-axis) in mm, or (x half-axis,
+    y half-axis, polar half-axis) for ellipsoids with elliptic cross-sections. Equal numbers
+    give spheres (the hemispherical shell of DESIGN section 5). ``rotation`` (3x3) and ``translation``
     (3,) move the finished mesh rigidly into an oblique world frame.
     """
     import gmsh
 
-    (bi, ai), (bo, ao) = inner, outer
+    (bi, ci, ai), (bo, co, ao) = _three(inner), _three(outer)
     gmsh.initialize(interruptible=False)
     try:
         gmsh.option.setNumber("General.Terminal", 0)
         occ = gmsh.model.occ
         so = occ.addSphere(0, 0, 0, 1.0)
-        occ.dilate([(3, so)], 0, 0, 0, bo, bo, ao)
+        occ.dilate([(3, so)], 0, 0, 0, bo, co, ao)
         si = occ.addSphere(0, 0, 0, 1.0)
-        occ.dilate([(3, si)], 0, 0, 0, bi, bi, ai)
+        occ.dilate([(3, si)], 0, 0, 0, bi, ci, ai)
         shell, _ = occ.cut([(3, so)], [(3, si)])
-        big = 2.5 * max(bo, ao)
+        big = 2.5 * max(bo, co, ao)
         box = occ.addBox(-big, -big, 0.0, 2 * big, 2 * big, big)
         wall, _ = occ.cut(shell, [(3, box)])
         occ.synchronize()
@@ -60,8 +61,8 @@ def spheroid_shell(inner=(20.0, 20.0), outer=(30.0, 30.0), *, size=3.0, rotation
 
     centroid = points[faces].mean(axis=1)
     on_base = np.abs(centroid[:, 2]) < 1e-6 * max(ao, bo) + 1e-9
-    inner_level = (centroid[:, 0] ** 2 + centroid[:, 1] ** 2) / bi**2 + centroid[:, 2] ** 2 / ai**2
-    outer_level = (centroid[:, 0] ** 2 + centroid[:, 1] ** 2) / bo**2 + centroid[:, 2] ** 2 / ao**2
+    inner_level = centroid[:, 0] ** 2 / bi**2 + centroid[:, 1] ** 2 / ci**2 + centroid[:, 2] ** 2 / ai**2
+    outer_level = centroid[:, 0] ** 2 / bo**2 + centroid[:, 1] ** 2 / co**2 + centroid[:, 2] ** 2 / ao**2
     tags_ = np.where(on_base, BASE, np.where(np.abs(inner_level - 1) < np.abs(outer_level - 1), ENDO, EPI))
 
     rotation = np.eye(3) if rotation is None else np.asarray(rotation, float)
@@ -71,6 +72,11 @@ def spheroid_shell(inner=(20.0, 20.0), outer=(30.0, 30.0), *, size=3.0, rotation
                     reference=rotation @ [1.0, 0, 0])
     return WallMesh(points=move(points), tets=tets, faces=faces, face_tags=tags_, axis=axis,
                     endo_apex=move([0, 0, -ai]), epi_apex=move([0, 0, -ao]))
+
+
+def _three(axes):
+    """(x, y, polar) half-axes from (equatorial, polar) or (x, y, polar)."""
+    return (axes[0], axes[0], axes[1]) if len(axes) == 2 else tuple(axes)
 
 
 def random_rotation(seed: int = 0) -> np.ndarray:

@@ -46,18 +46,18 @@ def test_linear_laws():
     law = FiberLaw()
     np.testing.assert_allclose(architecture.helix_angle(law, [0.0, 0.5, 1.0, 0.25]),
                                [60.0, 0.0, -60.0, 30.0], atol=1e-12)
-    law = FiberLaw(transverse_endo=10.0, transverse_epi=-20.0)
-    np.testing.assert_allclose(architecture.transverse_angle(law, [0.0, 1.0, 0.5]),
+    law = FiberLaw(sheet_angle_endo=10.0, sheet_angle_epi=-20.0)
+    np.testing.assert_allclose(architecture.sheet_angle(law, [0.0, 1.0, 0.5]),
                                [10.0, -20.0, -5.0], atol=1e-12)
 
 
-def test_helix_and_transverse_angles_measured_back_from_vectors():
-    # Definitions of DESIGN section 4: helix = atan2(f.e_long, f.e_circ); the transverse angle
+def test_helix_and_sheet_angles_measured_back_from_vectors():
+    # Definitions of DESIGN section 4: helix = atan2(f.e_long, f.e_circ); the sheet angle
     # turns the sheet about the fiber starting from e_rad, so
     # sheet = cos(b) e_rad + sin(b) (fiber x e_rad).
     e_rad, e_long, e_circ = _random_frames(2000, seed=1)
     depth = np.random.default_rng(2).uniform(0.0, 1.0, 2000)
-    law = FiberLaw(helix_endo=70.0, helix_epi=-50.0, transverse_endo=-15.0, transverse_epi=25.0)
+    law = FiberLaw(helix_endo=70.0, helix_epi=-50.0, sheet_angle_endo=-15.0, sheet_angle_epi=25.0)
     f, s, n, helix, trans = architecture.orient(e_rad, e_long, e_circ, depth, law)
     measured = np.degrees(np.arctan2(np.einsum("ij,ij->i", f, e_long),
                                      np.einsum("ij,ij->i", f, e_circ)))
@@ -72,7 +72,7 @@ def test_helix_and_transverse_angles_measured_back_from_vectors():
 
 
 def test_zero_angles_give_the_frame_itself():
-    # Helix 0 and transverse 0: fiber = e_circ, sheet = e_rad, sheet_normal = e_circ x e_rad =
+    # Helix 0 and sheet angle 0: fiber = e_circ, sheet = e_rad, sheet_normal = e_circ x e_rad =
     # -e_long (DESIGN section 4 definitions).
     e_rad, e_long, e_circ = _random_frames(50, seed=4)
     law = FiberLaw(helix_endo=0.0, helix_epi=0.0)
@@ -119,7 +119,7 @@ def test_orient_reorthonormalises_perturbed_frames():
     f, s, n, _, _ = architecture.orient(*noisy, depth, FiberLaw())
     _assert_triad(f, s, n)
     r = noisy[0] / np.linalg.norm(noisy[0], axis=1)[:, None]
-    np.testing.assert_allclose(s, r, atol=1e-12)  # transverse 0: the sheet is the unit e_rad
+    np.testing.assert_allclose(s, r, atol=1e-12)  # sheet angle 0: the sheet is the unit e_rad
     # Degenerate rows: zero e_rad, e_long parallel to e_rad.
     bad_rad = np.array([[0.0, 0.0, 0.0], [1.0, 0.0, 0.0]])
     bad_long = np.array([[0.0, 0.0, 1.0], [2.0, 0.0, 0.0]])
@@ -138,22 +138,23 @@ def test_orient_rejects_nan_frames():
 
 def test_assign_on_a_mesh(mesh, coords):
     law = FiberLaw()
-    arch = architecture.assign(coords, law)
+    arch = architecture.assign(coords, law, mesh)
     _assert_triad(arch.fiber, arch.sheet, arch.sheet_normal)
     _assert_triad(arch.cell_fiber, arch.cell_sheet, arch.cell_sheet_normal)
     assert arch.cell_fiber.shape == (len(mesh.tets), 3)
     # Endocardial nodes carry the endocardial angle and epicardial ones the epicardial angle
-    # (DESIGN section 4 default law).
-    np.testing.assert_allclose(arch.helix_angle[mesh.face_nodes(ENDO)], 60.0, atol=1e-12)
-    np.testing.assert_allclose(arch.helix_angle[mesh.face_nodes(EPI)], -60.0, atol=1e-12)
+    # (DESIGN section 4 default law), in the short-axis frame the default lays it out in.
+    np.testing.assert_allclose(arch.helix_angle_sax[mesh.face_nodes(ENDO)], 60.0, atol=1e-9)
+    np.testing.assert_allclose(arch.helix_angle_sax[mesh.face_nodes(EPI)], -60.0, atol=1e-9)
     measured = np.degrees(np.arctan2(np.einsum("ij,ij->i", arch.fiber, coords.e_long),
                                      np.einsum("ij,ij->i", arch.fiber, coords.e_circ)))
     np.testing.assert_allclose(measured, arch.helix_angle, atol=1e-6)
-    # Cell depth override.
-    arch2 = architecture.assign(coords, law, cell_transmural=np.zeros(len(mesh.tets)))
-    cell_helix = np.degrees(np.arctan2(np.einsum("ij,ij->i", arch2.cell_fiber, coords.cell_e_long),
-                                       np.einsum("ij,ij->i", arch2.cell_fiber, coords.cell_e_circ)))
-    np.testing.assert_allclose(cell_helix, 60.0, atol=1e-6)
+    # The rule of earlier versions: Laplace depth, Laplace frame.
+    old = architecture.assign(coords, FiberLaw(depth="laplace", helix_frame="laplace"), mesh)
+    np.testing.assert_allclose(old.helix_angle, 60.0 - 120.0 * coords.transmural, atol=1e-9)
+    cell_helix = np.degrees(np.arctan2(np.einsum("ij,ij->i", old.cell_fiber, coords.cell_e_long),
+                                       np.einsum("ij,ij->i", old.cell_fiber, coords.cell_e_circ)))
+    np.testing.assert_allclose(cell_helix, 60.0 - 120.0 * coords.cell_transmural, atol=1e-6)
 
 
 def test_fibers_rotate_with_the_mesh(mesh, coords):
@@ -161,9 +162,10 @@ def test_fibers_rotate_with_the_mesh(mesh, coords):
     R = shells.random_rotation(11)
     moved = shells.spheroid_shell(inner=(20.0, 35.0), outer=(30.0, 45.0), size=3.0, rotation=R,
                                   translation=[5.0, 6.0, -7.0])
-    a = architecture.assign(coords, FiberLaw())
-    b = architecture.assign(coordinates.compute(moved), FiberLaw())
+    a = architecture.assign(coords, FiberLaw(), mesh)
+    b = architecture.assign(coordinates.compute(moved), FiberLaw(), moved)
     np.testing.assert_allclose(b.helix_angle, a.helix_angle, atol=1e-5)
+    np.testing.assert_allclose(b.helix_angle_sax, a.helix_angle_sax, atol=1e-5)
     for name in ("fiber", "sheet", "sheet_normal", "cell_fiber", "cell_sheet",
                  "cell_sheet_normal"):
         np.testing.assert_allclose(getattr(b, name), getattr(a, name) @ R.T, atol=1e-5)

@@ -17,7 +17,12 @@ from fibers.config import FiberLaw, Landmarks, PoolSettings
 from fibers.errors import InputError
 
 # table -> key -> (kind, default, low, high, meaning). Kinds: float, int, bool, str, path,
-# point (three floats), choice:<a|b>, profile (list of [depth, angle]), labels (sub-table).
+# point (three floats), choice:<a|b>, profile (list of [depth, angle]), offsets (list of
+# [position, degrees]), labels (sub-table).
+
+# Keys renamed so that no word means two things: old key -> new key (the old one is refused).
+RENAMED = {("fibers", "transverse_endo"): "sheet_angle_endo",
+           ("fibers", "transverse_epi"): "sheet_angle_epi"}
 SCHEMA: dict[str, dict[str, tuple]] = {
     "input": {
         "contours": ("path", None, None, None, "contours CSV, relative to the case file"),
@@ -40,11 +45,30 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
     },
     "fibers": {
+        "preset": ("choice:none|bayer2012|streeter1969", "none", None, None,
+                   "published rule whose values fill the [fibers] keys not given here"),
+        "depth": ("choice:thickness|laplace", "thickness", None, None,
+                  "depth the laws use: fraction of the wall thickness, or the Laplace solution"),
+        "helix_frame": ("choice:short_axis|laplace", "short_axis", None, None,
+                        "frame of the helix angle: short-axis circumferential direction, or Laplace e_circ"),
         "helix_endo": ("float", 60.0, -90.0, 90.0, "helix angle at the endocardium, degrees"),
         "helix_epi": ("float", -60.0, -90.0, 90.0, "helix angle at the epicardium, degrees"),
-        "transverse_endo": ("float", 0.0, -90.0, 90.0, "transverse angle at the endocardium, degrees"),
-        "transverse_epi": ("float", 0.0, -90.0, 90.0, "transverse angle at the epicardium, degrees"),
+        "sheet_angle_endo": ("float", 0.0, -90.0, 90.0, "rotation of the sheet about the fiber at the endocardium, degrees"),
+        "sheet_angle_epi": ("float", 0.0, -90.0, 90.0, "rotation of the sheet about the fiber at the epicardium, degrees"),
+        "imbrication_endo": ("float", 0.0, -45.0, 45.0, "tilt of the fiber out of the wall plane at the endocardium, degrees"),
+        "imbrication_epi": ("float", 0.0, -45.0, 45.0, "tilt of the fiber out of the wall plane at the epicardium, degrees"),
         "helix_profile": ("profile", None, None, None, "[[depth, angle], ...] replacing the linear helix law"),
+        "sheet_profile": ("profile", None, None, None, "[[depth, angle], ...] replacing the linear sheet law"),
+        "helix_apicobasal": ("offsets", None, None, None, "[[position, degrees], ...] added to the helix, 0 apex 1 base"),
+        "sheet_apicobasal": ("offsets", None, None, None, "[[position, degrees], ...] added to the sheet angle, 0 apex 1 base"),
+        "helix_septal_offset": ("float", 0.0, -45.0, 45.0, "degrees added to the helix in the septum, tapering to 0 on the free wall"),
+        "sheet_septal_offset": ("float", 0.0, -45.0, 45.0, "degrees added to the sheet angle in the septum, tapering to 0 on the free wall"),
+        "dispersion_endo": ("float", 0.0, 0.0, 1.0 / 3.0, "fiber dispersion kappa at the endocardium (0 aligned, 1/3 isotropic)"),
+        "dispersion_epi": ("float", 0.0, 0.0, 1.0 / 3.0, "fiber dispersion kappa at the epicardium"),
+    },
+    "segments": {
+        "septal_sectors": ("choice:fixed|insertions", "fixed", None, None,
+                           "60-degree sectors about the septal bisector, or septal sectors ending at the insertion points"),
     },
     "pools": {
         "myocardium": ("int", 100_000, 0, 20_000_000, "wall points"),
@@ -76,6 +100,7 @@ class Case:
     law: FiberLaw
     pools: PoolSettings
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
+    septal_sectors: str = "fixed"
 
 
 def read_case(path: str | Path) -> Case:
@@ -99,6 +124,7 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
     """Check a parsed case-file dictionary against ``SCHEMA`` and fill in the defaults."""
     values = {table: {} for table in SCHEMA}
     _walk(data, "", values, name)
+    _apply_preset(values["fibers"])
     for table, keys in SCHEMA.items():
         for key, (kind, default, *_rest) in keys.items():
             values[table].setdefault(key, default)
@@ -116,15 +142,38 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
         None if lm["rv_insertion_anterior"] is None else np.array(lm["rv_insertion_anterior"], float),
         None if lm["rv_insertion_inferior"] is None else np.array(lm["rv_insertion_inferior"], float),
         source="case file" if lm["rv_insertion_anterior"] is not None else "none")
-    fib = values["fibers"]
-    law = FiberLaw(fib["helix_endo"], fib["helix_epi"], fib["transverse_endo"], fib["transverse_epi"],
-                   None if fib["helix_profile"] is None else tuple(tuple(r) for r in fib["helix_profile"]))
+    law = fiber_law(values["fibers"])
     pools = PoolSettings(**values["pools"])
     return Case(path=path, sha256=sha256, contours=resolve(inp["contours"]),
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
-                law=law, pools=pools, values=values)
+                law=law, pools=pools, values=values,
+                septal_sectors=values["segments"]["septal_sectors"])
+
+
+def fiber_law(fib: dict) -> FiberLaw:
+    """The FiberLaw of a resolved [fibers] table (also as read back from a manifest)."""
+    table = lambda key: None if fib.get(key) is None else tuple(tuple(r) for r in fib[key])  # noqa: E731
+    plain = {k: fib[k] for k in FiberLaw.__dataclass_fields__
+             if k in fib and k not in ("preset",) and not k.endswith(("_profile", "_apicobasal"))}
+    preset = fib.get("preset")
+    return FiberLaw(**plain, **{k: table(k) for k in ("helix_profile", "sheet_profile",
+                                                       "helix_apicobasal", "sheet_apicobasal")},
+                    preset=None if preset in (None, "none") else preset)
+
+
+def _apply_preset(fib: dict) -> None:
+    """Fill the [fibers] keys not given in the case file from the preset; record it in full."""
+    from fibers.fiber_presets import preset_record
+
+    name = fib.get("preset", "none")
+    if name == "none":
+        return
+    record = preset_record(name)
+    for key, value in record["values"].items():
+        fib.setdefault(key, value)
+    fib["preset_record"] = record
 
 
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
@@ -138,6 +187,10 @@ def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
         if prefix not in SCHEMA:
             raise InputError(f"{name}: key '{where}' must sit inside a table such as [mesh]{_suggest(key, _all_keys())}")
         keys = SCHEMA[prefix]
+        if (prefix, key) in RENAMED:
+            new = RENAMED[(prefix, key)]
+            raise InputError(f"{name}: [{prefix}] {key} is now called {new} (the rotation of the sheet "
+                             f"about the fiber; imaging's transverse angle is imbrication_endo/_epi): rename it")
         if key not in keys:
             raise InputError(f"{name}: unknown key '{key}' in [{prefix}]{_suggest(key, list(keys))}")
         values[prefix][key] = _check(value, keys[key], f"[{prefix}] {key}", name)
@@ -173,6 +226,18 @@ def _check(value, spec, where, name):
                 or not np.all(np.isfinite(value))):
             raise bad("expected three numbers [x, y, z] in mm")
         return [float(v) for v in value]
+    if kind == "offsets":
+        rows = value if isinstance(value, list) else None
+        if (not rows or len(rows) < 2 or not all(isinstance(r, list) and len(r) == 2 for r in rows)
+                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for r in rows for v in r)):
+            raise bad("expected at least two [position, degrees] pairs")
+        pos = np.array([r[0] for r in rows], float)
+        angle = np.array([r[1] for r in rows], float)
+        if pos.min() < 0 or pos.max() > 1 or np.any(np.diff(pos) <= 0):
+            raise bad("positions must rise strictly from 0 (apex) to 1 (base)")
+        if np.abs(angle).max() > 90:
+            raise bad("offsets must lie between -90 and 90 degrees")
+        return [[float(a), float(b)] for a, b in rows]
     if kind == "profile":
         rows = value if isinstance(value, list) else None
         if (not rows or len(rows) < 2 or not all(isinstance(r, list) and len(r) == 2 for r in rows)
@@ -208,8 +273,8 @@ def case_text(*, contours="contours.csv", landmarks: Landmarks | None = None, me
                   f"rv_insertion_anterior = {fmt(landmarks.rv_insertion_anterior)}",
                   f"rv_insertion_inferior = {fmt(landmarks.rv_insertion_inferior)}", ""]
     lines += ["[geometry]", "align_slices = true", "", "[mesh]", f"size = {mesh_size}", "",
-              "[fibers]", "helix_endo = 60.0", "helix_epi = -60.0", "transverse_endo = 0.0",
-              "transverse_epi = 0.0", "", "[pools]", "myocardium = 100000", "cavity = 20000",
+              "[fibers]", "helix_endo = 60.0", "helix_epi = -60.0", "sheet_angle_endo = 0.0",
+              "sheet_angle_epi = 0.0", "", "[pools]", "myocardium = 100000", "cavity = 20000",
               "background = 100000", "endo = 10000", "epi = 10000", "base = 10000",
               f"seed = {seed}", 'sampler = "random"', "margin = 10.0", ""]
     return "\n".join(lines) + extra

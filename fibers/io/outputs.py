@@ -14,8 +14,9 @@ import numpy as np
 import fibers
 from fibers.types import FACE_TAG_NAMES
 
-POINT_FIELDS = ("transmural", "apicobasal", "circumferential", "e_rad", "e_long", "e_circ",
-                "fiber", "sheet", "sheet_normal", "helix_angle", "transverse_angle")
+POINT_FIELDS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "e_rad",
+                "e_long", "e_circ", "frame_quality", "fiber", "sheet", "sheet_normal",
+                "helix_angle", "helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion")
 CELL_TRIAD = {"fiber": "cell_fiber", "sheet": "cell_sheet", "sheet_normal": "cell_sheet_normal"}
 WALL_TAG = 1  # physical tag of the wall volume in mesh.msh (the faces use 1, 2, 3 in dimension 2)
 
@@ -23,12 +24,18 @@ CONVENTIONS = {
     "units": "lengths mm, volumes mL, mass g, angles degrees",
     "transmural": "0 on the endocardium, 1 on the epicardium (Laplace solution)",
     "apicobasal": "0 at the apex, 1 at the base plane (Laplace solution from an apical patch, remapped monotonically to even spacing along the long axis)",
-    "circumferential": "degrees about the long axis in [-180, 180), increasing along e_circ; 0 at the septal bisector when landmarks are given",
+    "circumferential": "degrees about the long axis in [-180, 180), increasing along e_circ (clockwise seen from the apex), as the segment angle does; 0 at the septal bisector when landmarks are given",
     "e_rad": "endocardium to epicardium",
     "e_long": "apex to base, orthogonal to e_rad",
     "e_circ": "e_long x e_rad",
     "helix_angle": "angle of the fiber from e_circ toward e_long: fiber = cos(a) e_circ + sin(a) e_long; positive is a right-handed helix",
-    "transverse_angle": "rotation of the sheet about the fiber; 0 means sheet = e_rad",
+    "thickness_fraction": "fraction of the wall thickness, d_endo / (d_endo + d_epi) from the distances to the two surfaces; 0 endocardium, 1 epicardium",
+    "fiber_depth": "the fiber laws use the depth named by parameters.fibers.depth: thickness_fraction ('thickness') or transmural ('laplace')",
+    "helix_angle_sax": "angle of the fiber's projection on the wall's tangent plane (normal e_rad) from the short-axis circumferential direction (long axis x e_rad, normalised) toward the long axis; near the apex (e_rad within 30 degrees of the axis) the direction about the axis at the point",
+    "imbrication_angle": "angle of the fiber out of the wall's tangent plane, asin(fiber . e_rad); positive toward the epicardium",
+    "sheet_angle": "rotation of the sheet about the fiber, from the part of e_rad orthogonal to the fiber; 0 means sheet = e_rad when the imbrication is 0",
+    "dispersion": "fiber dispersion kappa of Gasser, Ogden and Holzapfel 2006: 0 aligned, 1/3 isotropic",
+    "frame_quality": "mm from the long axis, where the frame is singular (it winds once about the axis in the apical cap); below 3.5 mm do not trust the frame or the fibers",
     "sheet_normal": "fiber x sheet (right-handed triad)",
     "aha_segment": "1-17 after Cerqueira et al., Circulation 2002; 0 = not labelled",
     "face_tags": {name: tag for tag, name in FACE_TAG_NAMES.items()},
@@ -39,8 +46,10 @@ CONVENTIONS = {
 
 def point_data(result) -> dict:
     c, a = result.coords, result.arch
-    data = {name: getattr(c, name) for name in ("transmural", "apicobasal", "circumferential", "e_rad", "e_long", "e_circ")}
-    data.update({name: getattr(a, name) for name in ("fiber", "sheet", "sheet_normal", "helix_angle", "transverse_angle")})
+    data = {name: getattr(c, name) for name in ("transmural", "thickness_fraction", "apicobasal", "circumferential",
+                                                "e_rad", "e_long", "e_circ", "frame_quality")}
+    data.update({name: getattr(a, name) for name in ("fiber", "sheet", "sheet_normal", "helix_angle", "helix_angle_sax",
+                                                     "imbrication_angle", "sheet_angle", "dispersion")})
     return {k: np.ascontiguousarray(v, dtype=np.float64) for k, v in data.items()}
 
 
