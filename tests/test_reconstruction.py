@@ -52,7 +52,8 @@ def test_helix_angle_in_the_analytic_frame(rebuilt):
     e_l = np.cross(e_r, e_c)
     f = r.arch.fiber
     measured = np.degrees(np.arctan2(np.einsum("ij,ij->i", f, e_l), np.einsum("ij,ij->i", f, e_c)))
-    depth = np.clip((1 / RI - 1 / np.linalg.norm(radial, axis=1)) / (1 / RI - 1 / RO), 0, 1)
+    # the default law uses the fraction of the wall thickness, (r - ri) / (ro - ri) on a sphere
+    depth = np.clip((np.linalg.norm(radial, axis=1) - RI) / (RO - RI), 0, 1)
     law = 60.0 - 120.0 * depth
     diff = np.abs((measured - law + 90.0) % 180.0 - 90.0)[away]
     assert diff.mean() <= 2.0

@@ -176,3 +176,48 @@ def test_swapped_landmarks_warn(mesh):
     # The labels still follow the points as given: the mirror of the usual layout.
     p = on_epi(PHI_BIS + 90.0, -5.0)      # anterior side in the usual layout, labelled inferior
     assert segments.label_points(p, mesh, s).tolist() == [4]
+
+
+def test_circumferential_and_segment_angle_share_one_sense(mesh, septum):
+    # Issue 14: circumferential (about the long axis, along e_circ) and the segment angle
+    # increase the same way, so labelling by the circumferential coordinate reproduces the
+    # labels; the Cerqueira sector table is evaluated independently in expected_labels.
+    from fibers import coordinates
+    coords = coordinates.compute(mesh, zero_direction=septum.bisector)
+    centroid = mesh.points[mesh.tets].mean(axis=1)
+    angle = segments.septal_angle(centroid, mesh.axis, septum)
+    diff = wrap(angle - coords.cell_circumferential)
+    assert np.abs(diff).max() < 1e-9
+    depth = segments.depth_below_base(centroid, mesh.axis) / L
+    reused = segments.labels_from_angles(coords.cell_circumferential, depth, septum)
+    assert np.array_equal(reused, expected_labels(centroid))
+    # Clockwise as seen from the apex = right-handed about the apex-to-base axis: the
+    # anterior insertion (at +60 degrees from the bisector in the usual anatomy) is positive.
+    assert segments.septal_angle(on_epi(PHI_ANT, -5.0), mesh.axis, septum)[0] == pytest.approx(60.0, abs=1e-6)
+
+
+def test_septal_sectors_follow_the_insertions(mesh):
+    # A 100-degree septal arc (insertions at 100 and 0 degrees, bisector at 50): with
+    # sectors = "insertions", segments 2 and 3 fill the arc and the other four share the
+    # remaining 260 degrees (65 each); "fixed" keeps 60-degree sectors. Volumes of sectors of
+    # the axisymmetric shell are proportional to their angle (elementary calculus).
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        fixed = segments.locate_septum(mesh, marks(phi_ant=100.0, phi_inf=0.0))
+        moved = segments.locate_septum(mesh, marks(phi_ant=100.0, phi_inf=0.0), sectors="insertions")
+    assert moved.half_angle == pytest.approx(50.0, abs=1e-9)
+    p = on_epi(50.0 + 55.0, -5.0)        # 5 degrees beyond the anterior insertion
+    assert segments.label_points(p, mesh, fixed).tolist() == [2]
+    assert segments.label_points(p, mesh, moved).tolist() == [1]
+    p = on_epi(50.0 - 45.0, -5.0)        # inside the arc, on the inferior side
+    assert segments.label_points(p, mesh, moved).tolist() == [3]
+    vol = meshtools.signed_volumes(mesh.points, mesh.tets)
+    labels = segments.label_cells(mesh, moved)
+    basal = np.isin(labels, range(1, 7))
+    share = {k: vol[labels == k].sum() / vol[basal].sum() for k in range(1, 7)}
+    assert share[2] + share[3] == pytest.approx(100.0 / 360.0, abs=0.02)
+    assert share[1] == pytest.approx(65.0 / 360.0, abs=0.02)
+    apical = np.isin(labels, range(13, 17))
+    assert vol[labels == 14].sum() / vol[apical].sum() == pytest.approx(100.0 / 360.0, abs=0.03)
+    with pytest.raises(InputError, match="septal_sectors"):
+        segments.locate_septum(mesh, marks(), sectors="even")

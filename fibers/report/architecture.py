@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from fibers.report.drawing import Scene, colourbar, in_plane_xy, line_glyphs, long_axis_cut, pyplot, save_figure, show_image, x_label
-from fibers.report.reading import ACCENT, Build, GLYPHS, GLYPH_MM, HELIX_CMAP, HELIX_RANGE, INK, WALL_GREY, geometric_helix, helix_law, measured_helix, outer_surface, read_pool_arrays, ring_masks, unit_vector
+from fibers.report.reading import ACCENT, Build, fiber_law, GLYPHS, GLYPH_MM, HELIX_CMAP, HELIX_RANGE, INK, WALL_GREY, helix_law, law_depth, measured_helix, sax_helix, outer_surface, read_pool_arrays, ring_masks, unit_vector
 
 
 def fig_fibers(build: Build, path: Path) -> dict:
@@ -125,53 +125,94 @@ def fig_helix(build: Build, path: Path) -> dict:
         fig.suptitle("Helix angle against transmural depth")
         save_figure(fig, path)
         return {"helix_rings": []}
-    depth = pool["transmural"]
+    depth = law_depth(build.manifest, pool)
     measured = measured_helix(pool)
-    geometric = geometric_helix(build, pool)
-    law = helix_law(build.manifest, depth)
+    sax = sax_helix(build, pool)
+    law = helix_law(build.manifest, depth, pool, labelled=build.labelled)
+    frame = fiber_law(build.manifest).helix_frame
     rings = [(n, m) for n, m in ring_masks(build, pool) if m.any()]
-    fig = plt.figure(figsize=(3.2 * len(rings) + 1.8, 5.0))
+    fig = plt.figure(figsize=(3.2 * len(rings) + 1.8, 7.6))
     width = 0.84 / len(rings)
-    axes = [fig.add_axes([0.06 + i * width, 0.14, width - 0.02, 0.64]) for i in range(len(rings))]
+    axes = [fig.add_axes([0.06 + i * width, 0.43, width - 0.02, 0.42]) for i in range(len(rings))]
+    lower = [fig.add_axes([0.06 + i * width, 0.09, width - 0.02, 0.22]) for i in range(len(rings))]
     grid = np.linspace(0.0, 1.0, 201)
     edges = np.linspace(0, 1, 11)
     rows = []
     hb = None
+    chosen = sax if frame == "short_axis" else measured
+    depth_name = ("thickness fraction" if fiber_law(build.manifest).depth == "thickness"
+                  else "Laplace transmural depth")
     for i, (ax, (name, mask)) in enumerate(zip(axes, rings)):
-        hb = ax.hexbin(depth[mask], measured[mask], gridsize=(36, 30), extent=(0, 1, -90, 90), cmap="Greys",
+        ok_pts = mask & np.isfinite(chosen)
+        hb = ax.hexbin(depth[ok_pts], chosen[ok_pts], gridsize=(36, 30), extent=(0, 1, -90, 90), cmap="Greys",
                        mincnt=1, bins="log", linewidths=0)
-        ax.plot(grid, helix_law(build.manifest, grid), color="#d1495b", lw=2.2, label="prescribed law")
+        ax.plot(grid, helix_law(build.manifest, grid), color="#d1495b", lw=2.2,
+                label="prescribed law (no regional offsets)")
         which = np.clip(np.digitize(depth[mask], edges) - 1, 0, 9)
         cnt = np.bincount(which, minlength=10)
         ok = cnt > 0
         at = np.bincount(which, weights=depth[mask], minlength=10) / np.maximum(cnt, 1)
         for values, style, label in ((measured, dict(marker="o", ms=6, mfc=ACCENT, mec="white"),
-                                      "from e_long, e_circ of the output"),
-                                     (geometric, dict(marker="D", ms=4, mfc="#e0a526", mec=INK, mew=0.5),
-                                      "from the geometric circumferential direction")):
-            mean = np.bincount(which, weights=values[mask], minlength=10) / np.maximum(cnt, 1)
-            ax.plot(at[ok], mean[ok], ls="none", label=f"mean per 0.1 depth, {label}", **style)
+                                      "helix_angle (Laplace frame e_circ, e_long)"),
+                                     (sax, dict(marker="D", ms=4, mfc="#e0a526", mec=INK, mew=0.5),
+                                      "helix_angle_sax (short-axis imaging convention)")):
+            v = values[mask]
+            good = np.isfinite(v)
+            c = np.bincount(which[good], minlength=10)
+            mean = np.bincount(which[good], weights=v[good], minlength=10) / np.maximum(c, 1)
+            ax.plot(at[ok & (c > 0)], mean[ok & (c > 0)], ls="none", label=f"mean per 0.1 depth, {label}", **style)
+            _deviation(lower[i], depth[mask], (values - law)[mask], edges, style)
+        _dress_deviation(lower[i], i, depth_name)
         ax.set_title(f"{name} (n = {int(mask.sum()):,})")
-        ax.set_xlabel("transmural depth (1)\n0 endocardium, 1 epicardium")
+        ax.set_xticklabels([])
         ax.set_xlim(0, 1)
         ax.set_ylim(-90, 90)
         ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0])
-        ax.set_xticklabels(["0", "0.25", "0.5", "0.75", "1"])
         ax.set_yticks(np.arange(-90, 91, 30))
         if i:
             ax.set_yticklabels([])
         ax.grid(alpha=0.3)
         diff = np.abs(measured[mask] - law[mask])
-        geo = np.abs(geometric[mask] - law[mask])
+        geo = np.abs(sax[mask] - law[mask])
         rows.append({"ring": name, "n": int(mask.sum()), "mean_abs_deg": float(diff.mean()),
-                     "max_abs_deg": float(diff.max()), "geo_mean_abs_deg": float(np.nanmean(geo)),
-                     "geo_p99_abs_deg": float(np.nanpercentile(geo, 99))})
+                     "max_abs_deg": float(diff.max()),
+                     "sax_mean_abs_deg": float(np.nanmean(geo)) if np.isfinite(geo).any() else float("nan"),
+                     "sax_p99_abs_deg": float(np.nanpercentile(geo, 99)) if np.isfinite(geo).any() else float("nan")})
     axes[0].set_ylabel("helix angle (degrees)")
-    fig.legend(*axes[0].get_legend_handles_labels(), loc="upper center", bbox_to_anchor=(0.47, 0.915), ncol=3,
+    fig.legend(*axes[0].get_legend_handles_labels(), loc="upper center", bbox_to_anchor=(0.47, 0.945), ncol=3,
                fontsize=8.5, frameon=False)
-    cax = fig.add_axes([0.915, 0.14, 0.015, 0.64])
+    lower[0].set_ylabel("measured - law (degrees)\nmean, 5-95% band")
+    cax = fig.add_axes([0.915, 0.43, 0.015, 0.42])
     cb = fig.colorbar(hb, cax=cax)
-    cb.set_label("wall pool points per bin (count, log scale)")
-    fig.suptitle("Helix angle against transmural depth: measured from the output vectors vs the law", y=0.985)
+    cb.set_label(f"wall pool points per bin ({'helix_angle_sax' if frame == 'short_axis' else 'helix_angle'}; log)")
+    fig.suptitle("Helix angle against depth: both conventions measured from the output vectors vs the law", y=0.985)
     save_figure(fig, path)
     return {"helix_rings": rows}
+
+
+def _deviation(ax, depth, error, edges, style):
+    """Mean and 5-95 percentile band of ``error`` (degrees) per depth bin."""
+    good = np.isfinite(error)
+    depth, error = depth[good], error[good]
+    error = (error + 90.0) % 180.0 - 90.0
+    which = np.clip(np.digitize(depth, edges) - 1, 0, len(edges) - 2)
+    rows = [(depth[which == k].mean(), *np.percentile(error[which == k], [5, 50, 95]), error[which == k].mean())
+            for k in range(len(edges) - 1) if np.count_nonzero(which == k) >= 5]
+    if not rows:
+        return
+    at, lo, _med, hi, mean = (np.array(v) for v in zip(*rows))
+    ax.fill_between(at, lo, hi, color=style["mfc"], alpha=0.25, lw=0)
+    ax.plot(at, mean, color=style["mfc"], lw=1.2, marker=style["marker"], ms=style["ms"] * 0.7,
+            mec=style.get("mec", "white"))
+
+
+def _dress_deviation(ax, i, depth_name):
+    ax.axhline(0.0, color="#d1495b", lw=1.2)
+    ax.set_xlim(0, 1)
+    ax.set_ylim(-6, 6)
+    ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0])
+    ax.set_xticklabels(["0", "0.25", "0.5", "0.75", "1"])
+    if i:
+        ax.set_yticklabels([])
+    ax.grid(alpha=0.3)
+    ax.set_xlabel(depth_name + " (1)\n0 endocardium, 1 epicardium")

@@ -35,9 +35,11 @@ CAPTIONS = {
                        "cut with iso-lines every 0.1. Transmural is the Laplace solution between endocardium "
                        "and epicardium; apicobasal is the Laplace solution between an apical patch and the base, "
                        "remapped monotonically so its levels are evenly spaced along the long axis.",
-    "helix_depth.png": "Wall pool points: helix angle measured back from the output vectors, "
-                       "atan2(fiber.e_long, fiber.e_circ), folded into [-90, 90), against their transmural "
-                       "depth; the red line is the prescribed law from the resolved parameters.",
+    "helix_depth.png": "Wall pool points: helix angle measured back from the output vectors in both "
+                       "conventions, helix_angle (Laplace frame, atan2(fiber.e_long, fiber.e_circ)) and "
+                       "helix_angle_sax (short-axis circumferential direction, as diffusion imaging measures it), "
+                       "folded into [-90, 90), against the depth the laws used; grey bins show the convention the "
+                       "law is laid out in; the red line is the prescribed law from the resolved parameters.",
     "bullseye.png": "Standard 17-segment layout: basal ring outside, apex in the centre, segment 1 anterior at "
                     "the top, septum on the left. Thickness: distance from each epicardial pool point to the "
                     "closest point of the endocardial surface, averaged per segment.",
@@ -180,16 +182,20 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
                  "over the points of each segment. Wall volume: sum of the tetrahedra of each label.</p>")
 
     # helix check
-    hrows = [[r["ring"], r["n"], r["mean_abs_deg"], r["max_abs_deg"], r["geo_mean_abs_deg"], r["geo_p99_abs_deg"]]
+    hrows = [[r["ring"], r["n"], r["mean_abs_deg"], r["max_abs_deg"], r["sax_mean_abs_deg"], r["sax_p99_abs_deg"]]
              for r in facts.get("helix_rings", [])]
     parts.append('<h2 id="helix">Helix angle against the law</h2>' +
-                 _table(["ring", "wall pool points", "mean |measured - law| (deg)", "max |measured - law| (deg)",
-                         "geometric: mean |angle - law| (deg)", "geometric: 99th percentile (deg)"], hrows) +
-                 '<p class="muted">Measured: atan2(fiber.e_long, fiber.e_circ) in degrees from the vectors of '
+                 _table(["ring", "wall pool points", "Laplace frame: mean |angle - law| (deg)",
+                         "Laplace frame: max (deg)", "short axis: mean |angle - law| (deg)",
+                         "short axis: 99th percentile (deg)"], hrows) +
+                 '<p class="muted">Laplace frame: atan2(fiber.e_long, fiber.e_circ), the helix_angle field; short '
+                 "axis: the fiber projected on the plane normal to e_rad, from the short-axis circumferential "
+                 "direction (long axis x e_rad) toward the long axis, the helix_angle_sax field (points whose wall "
+                 "normal is within 30 degrees of the axis left out). Both in degrees from the vectors of "
                  "pools/myocardium.npz, folded into [-90, 90); law: the resolved fibers parameters at the point's "
-                 "transmural depth. Geometric: the same fiber against the circumferential direction of the long "
-                 "axis (axis x offset from the axis, in the plane normal to e_rad); it tests the frame itself and "
-                 "departs from the law near the apex, where the axis no longer gives a direction.</p>")
+                 "depth (parameters.fibers.depth), with its regional offsets. The law is laid out in the frame "
+                 "parameters.fibers.helix_frame names, so that column should read near 0; the other shows how "
+                 "far the two conventions part.</p>")
 
     # figures
     parts.append('<h2 id="figures">Figures</h2>')

@@ -151,7 +151,8 @@ def load_build(folder: Path, manifest: dict) -> Build:
     if lacking:
         raise InputError(f"{folder}/mesh.vtu lacks {', '.join(lacking)}; it was not written by this version of fibers")
     keys = {
-        "myocardium": ("points", "transmural", "apicobasal", "fiber", "e_long", "e_circ", "aha_segment"),
+        "myocardium": ("points", "transmural", "thickness_fraction", "apicobasal", "circumferential", "fiber",
+                       "e_rad", "e_long", "e_circ", "aha_segment"),
         "epi": ("points", "aha_segment"), "endo": ("points",), "base": ("points",), "cavity": ("points",),
         "background": ("points", "region", "region_names"),
     }
@@ -246,40 +247,64 @@ def segment_table(build: Build) -> dict:
             "thickness_all": dist, "total_ml": float(vol.sum())}
 
 
-def helix_law(manifest: dict, depth: np.ndarray) -> np.ndarray:
-    """The prescribed helix angle (degrees) at depth, from the manifest's parameters."""
-    fib = (manifest.get("parameters") or {}).get("fibers") or {}
-    d = np.clip(np.asarray(depth, float), 0.0, 1.0)
-    profile = fib.get("helix_profile")
-    if profile:
-        table = np.asarray(profile, float)
-        return np.interp(d, table[:, 0], table[:, 1])
-    endo, epi = float(fib.get("helix_endo", 60.0)), float(fib.get("helix_epi", -60.0))
-    return endo + (epi - endo) * d
+def fiber_law(manifest: dict):
+    """The FiberLaw of a build, from the manifest's resolved parameters."""
+    from fibers.io.case import fiber_law as law_of
+
+    return law_of((manifest.get("parameters") or {}).get("fibers") or {})
+
+
+def law_depth(manifest: dict, pool: dict) -> np.ndarray:
+    """The depth (K,) the build's fiber laws used: thickness fraction or Laplace transmural."""
+    law = fiber_law(manifest)
+    if law.depth == "thickness" and "thickness_fraction" in pool:
+        return np.asarray(pool["thickness_fraction"], float)
+    return np.asarray(pool["transmural"], float)
+
+
+def helix_law(manifest: dict, depth: np.ndarray, pool: dict | None = None, *,
+              labelled: bool = False) -> np.ndarray:
+    """The prescribed helix angle (degrees) at depth, from the manifest's parameters.
+
+    With ``pool``, the apicobasal offsets and (when ``labelled``) the septal offset at its
+    points are added, as the build did.
+    """
+    from fibers import architecture
+
+    law = fiber_law(manifest)
+    position = weight = None
+    if pool is not None:
+        position = pool.get("apicobasal")
+        if labelled and "circumferential" in pool:
+            weight = architecture.septal_weight(pool["circumferential"])
+    if law.helix_apicobasal is not None and position is None:
+        position = np.full(np.shape(depth), 0.5)
+    return architecture.helix_angle(law, depth, apicobasal=position, septal_weight=weight)
 
 
 def measured_helix(pool: dict) -> np.ndarray:
-    """Helix angle (K,) degrees from the fiber vectors, folded into [-90, 90)."""
+    """Helix angle (K,) degrees from the fiber vectors in the Laplace frame, folded into [-90, 90)."""
     f = pool["fiber"]
     a = np.degrees(np.arctan2(np.einsum("ij,ij->i", f, pool["e_long"]), np.einsum("ij,ij->i", f, pool["e_circ"])))
     return (a + 90.0) % 180.0 - 90.0
 
 
-def geometric_helix(build: Build, pool: dict) -> np.ndarray:
-    """Helix angle (K,) degrees against the circumferential direction of the long axis itself.
+def sax_helix(build: Build, pool: dict) -> np.ndarray:
+    """Helix angle (K,) degrees in the short-axis (imaging) convention, from the vectors.
 
-    The wall's tangent plane is taken normal to the output ``e_rad``; in it the circumferential
-    direction is the long axis crossed with the point's offset from the axis, projected, and the
-    longitudinal one completes the frame as ``e_rad x circumferential``. Where the output frame
-    is right, this angle equals the one measured from ``e_circ``; near the apex the axis
-    direction is ill defined and the two part.
+    The fiber projected on the plane normal to the output ``e_rad``, its angle from the
+    short-axis circumferential direction ``axis x e_rad`` toward the long axis. NaN where the
+    wall normal is within 30 degrees of the axis (the apical cap), where that direction is
+    lost.
     """
-    e_rad = np.cross(pool["e_circ"], pool["e_long"])  # e_circ = e_long x e_rad, so e_rad = e_circ x e_long
-    e_rad /= np.linalg.norm(e_rad, axis=1)[:, None]
-    c = np.cross(build.axis, pool["points"] - build.centre)
-    c -= np.einsum("ij,ij->i", c, e_rad)[:, None] * e_rad
+    if "e_rad" in pool:
+        e_rad = np.asarray(pool["e_rad"], float)
+    else:  # builds of earlier versions: e_circ = e_long x e_rad, so e_rad = e_circ x e_long
+        e_rad = np.cross(pool["e_circ"], pool["e_long"])
+        e_rad /= np.linalg.norm(e_rad, axis=1)[:, None]
+    c = np.cross(build.axis, e_rad)
     norm = np.linalg.norm(c, axis=1)
-    c /= np.where(norm > 1e-9, norm, np.nan)[:, None]
+    c /= np.where(norm > 0.5, norm, np.nan)[:, None]
     long = np.cross(e_rad, c)
     f = pool["fiber"]
     a = np.degrees(np.arctan2(np.einsum("ij,ij->i", f, long), np.einsum("ij,ij->i", f, c)))
