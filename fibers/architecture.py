@@ -35,6 +35,7 @@ Holzapfel, J R Soc Interface 2006, linear over depth) are the prescribed values.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -287,6 +288,10 @@ def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = Fa
              "thickness_fraction": coords.cell_thickness_fraction,
              "apicobasal": coords.cell_apicobasal,
              "circumferential": coords.cell_circumferential}
+    if not septal and (law.helix_septal_offset or law.sheet_septal_offset):
+        warnings.warn("[fibers] helix_septal_offset / sheet_septal_offset need the septum, and there are no "
+                      "right-ventricular insertion landmarks: the septal offsets are not applied; add [landmarks]",
+                      stacklevel=2)
     at_nodes = point_triad(nodes, law, axis=mesh.axis, septal=septal)
     at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal)
     return Architecture(**{k: at_nodes[k] for k in TRIAD_FIELDS},

@@ -226,3 +226,12 @@ def test_apical_cap_cells_agree_with_their_nodes(sphere):
         p95[frame] = np.percentile(angle[band], 95)
     assert p95["short_axis"] < 10.0
     assert p95["laplace"] > 2.0 * p95["short_axis"]
+
+
+def test_septal_offset_without_landmarks_warns(sphere):
+    # The septal weight needs the septal bisector; without it the offset is dropped, said once.
+    mesh, c = sphere
+    with pytest.warns(UserWarning, match="septal offsets are not applied"):
+        arch = architecture.assign(c, FiberLaw(helix_septal_offset=10.0), mesh)
+    plain = architecture.assign(c, FiberLaw(), mesh)
+    np.testing.assert_allclose(arch.fiber, plain.fiber, atol=1e-12)
