@@ -1,6 +1,6 @@
 """Resolved build parameters: one frozen dataclass per case-file table, with the defaults.
 
-The case file (DESIGN.md section 3.2) is parsed and range-checked in ``fibers.io.case``; the
+The case file (README, "Case file") is parsed and range-checked in ``fibers.io.case``; the
 stages only ever see these objects.
 """
 

@@ -34,7 +34,7 @@ Two more fields: ``thickness_fraction``, the fraction of the wall thickness from
 endocardium (exact distances to the two surfaces), and ``frame_quality``, the distance from the
 long axis, where the frame is singular (see `frame_quality`).
 
-The frame (DESIGN.md section 4): ``e_rad`` is the normalised transmural gradient, ``e_long`` the
+The frame (README, "Conventions"): ``e_rad`` is the normalised transmural gradient, ``e_long`` the
 apicobasal gradient with its ``e_rad`` part removed, normalised, and ``e_circ = e_long x e_rad``.
 Nodal frames use the recovered (volume-weighted) nodal gradients, cell frames the element
 gradients.
@@ -225,9 +225,13 @@ def thickness_fraction(mesh: WallMesh, points: np.ndarray | None = None) -> np.n
     """
     from fibers.surface_distance import distance_to_surface
 
-    points = mesh.points if points is None else np.asarray(points, float).reshape(-1, 3)
+    nodes = points is None
+    points = mesh.points if nodes else np.asarray(points, float).reshape(-1, 3)
     d_endo = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == ENDO])
     d_epi = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == EPI])
+    if nodes:  # nodes of a surface lie on it: exact 0 and 1 there, as for the Laplace depth
+        d_endo[mesh.face_nodes(ENDO)] = 0.0
+        d_epi[mesh.face_nodes(EPI)] = 0.0
     total = d_endo + d_epi
     return np.clip(d_endo / np.where(total > 0, total, 1.0), 0.0, 1.0)
 

@@ -1,6 +1,6 @@
 """The 17 AHA segments (Cerqueira et al., Circulation 2002) on the wall mesh.
 
-Convention (DESIGN.md section 4):
+Convention (README, "Conventions"):
 
 - Rings by the long-axis depth ``h`` below the base plane, with ``L`` the depth of the cavity's
   apical end (``mesh.endo_apex``): ``h < L/3`` basal (1-6), ``L/3 <= h < 2L/3`` mid (7-12),

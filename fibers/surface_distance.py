@@ -62,22 +62,24 @@ def point_triangle_distance(p, a, b, c) -> np.ndarray:
     vb = d5 * d2 - d1 * d6
     vc = d1 * d4 - d3 * d2
     tiny = 1e-300
-    # Interior by default (barycentrics v, w of the face region), then each Voronoi region of
-    # the triangle's edges and vertices overrides where it holds; the vertex regions last.
+    # The closest point as a + s ab + t ac. Interior by default (the barycentrics of the face
+    # region), then each Voronoi region of the edges and vertices overrides where it holds,
+    # in the reverse of Ericson's order so that his first test wins.
     denom = np.maximum(va + vb + vc, tiny)
-    v, w = vb / denom, vc / denom
-    q = a + v[:, None] * ab + w[:, None] * ac
-    edge_bc = (va <= 0) & (d4 - d3 >= 0) & (d5 - d6 >= 0)
-    t = (d4 - d3) / np.maximum((d4 - d3) + (d5 - d6), tiny)
-    q = np.where(edge_bc[:, None], b + t[:, None] * (c - b), q)
-    edge_ac = (vb <= 0) & (d2 >= 0) & (d6 <= 0)
-    t = d2 / np.maximum(d2 - d6, tiny)
-    q = np.where(edge_ac[:, None], a + t[:, None] * ac, q)
-    edge_ab = (vc <= 0) & (d1 >= 0) & (d3 <= 0)
-    t = d1 / np.maximum(d1 - d3, tiny)
-    q = np.where(edge_ab[:, None], a + t[:, None] * ab, q)
-    q = np.where(((d6 >= 0) & (d5 <= d6))[:, None], c, q)
-    q = np.where(((d3 >= 0) & (d4 <= d3))[:, None], b, q)
-    q = np.where(((d1 <= 0) & (d2 <= 0))[:, None], a, q)
+    s, t = vb / denom, vc / denom
+    region = (va <= 0) & (d4 - d3 >= 0) & (d5 - d6 >= 0)                  # edge bc
+    w = (d4 - d3) / np.maximum((d4 - d3) + (d5 - d6), tiny)
+    s, t = np.where(region, 1.0 - w, s), np.where(region, w, t)
+    region = (vb <= 0) & (d2 >= 0) & (d6 <= 0)                             # edge ac
+    s, t = np.where(region, 0.0, s), np.where(region, d2 / np.maximum(d2 - d6, tiny), t)
+    region = (d6 >= 0) & (d5 <= d6)                                        # vertex c
+    s, t = np.where(region, 0.0, s), np.where(region, 1.0, t)
+    region = (vc <= 0) & (d1 >= 0) & (d3 <= 0)                             # edge ab
+    s, t = np.where(region, d1 / np.maximum(d1 - d3, tiny), s), np.where(region, 0.0, t)
+    region = (d3 >= 0) & (d4 <= d3)                                        # vertex b
+    s, t = np.where(region, 1.0, s), np.where(region, 0.0, t)
+    region = (d1 <= 0) & (d2 <= 0)                                         # vertex a
+    s, t = np.where(region, 0.0, s), np.where(region, 0.0, t)
+    q = a + s[:, None] * ab + t[:, None] * ac
     diff = p - q
     return np.sqrt(dot(diff, diff))
