@@ -14,8 +14,9 @@ PRESETS: dict[str, dict] = {
                   "myocardial fiber orientation to computational heart models. Ann Biomed Eng "
                   "40(10):2243-2254, 2012 (values from memory)",
         "notes": "Laplace-Dirichlet rule-based method: angles linear in the Laplace depth, laid "
-                 "out in the Laplace frame; helix +60 to -60, sheet -65 to +25 degrees.",
-        "values": {"helix_endo": 60.0, "helix_epi": -60.0, "sheet_angle_endo": -65.0,
+                 "out in the Laplace frame; helix +40 at the endocardium to -50 at the epicardium, "
+                 "sheet -65 to +25 degrees (the values of the paper's left-ventricular examples).",
+        "values": {"helix_endo": 40.0, "helix_epi": -50.0, "sheet_angle_endo": -65.0,
                    "sheet_angle_epi": 25.0, "imbrication_endo": 0.0, "imbrication_epi": 0.0,
                    "depth": "laplace", "helix_frame": "laplace"},
     },

@@ -145,10 +145,10 @@ def test_imbrication_measures_back(ellipsoid):
 @pytest.mark.parametrize("name", sorted(PRESETS))
 def test_presets_reproduce_their_sources(name, ellipsoid):
     # Endocardial and epicardial angles of each source (values from memory, see
-    # fibers/fiber_presets.py): Bayer et al., Ann Biomed Eng 2012, helix +60/-60 and sheet
+    # fibers/fiber_presets.py): Bayer et al., Ann Biomed Eng 2012, helix +40/-50 and sheet
     # -65/+25 in the Laplace frame; Streeter et al., Circ Res 1969, helix +60/-60 against the
     # circumferential direction with 0 at mid-wall.
-    source = {"bayer2012": {"helix": (60.0, -60.0), "sheet": (-65.0, 25.0), "frame": "helix_angle"},
+    source = {"bayer2012": {"helix": (40.0, -50.0), "sheet": (-65.0, 25.0), "frame": "helix_angle"},
               "streeter1969": {"helix": (60.0, -60.0), "sheet": (0.0, 0.0), "frame": "helix_angle_sax"}}[name]
     mesh, c = ellipsoid
     case = resolve_case({"input": {"contours": "c.csv"}, "fibers": {"preset": name}})
