@@ -38,6 +38,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
+        "order": ("int", 1, 1, 2, "element order: 1 linear (4-node), 2 quadratic (10-node) tetrahedra"),
     },
     "fibers": {
         "helix_endo": ("float", 60.0, -90.0, 90.0, "helix angle at the endocardium, degrees"),
@@ -76,6 +77,7 @@ class Case:
     law: FiberLaw
     pools: PoolSettings
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
+    mesh_order: int = 1                          # [mesh] order: 1 linear, 2 quadratic tetrahedra
 
 
 def read_case(path: str | Path) -> Case:
@@ -124,7 +126,7 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
-                law=law, pools=pools, values=values)
+                law=law, pools=pools, values=values, mesh_order=values["mesh"]["order"])
 
 
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
