@@ -392,3 +392,26 @@ def summary(quad: QuadraticMesh) -> dict:
         "straightened_elements": quad.jacobian["moved_back"],
         "corner_mesh_quality": quad.corner_quality,
     }
+
+
+def linear_grid(grid):
+    """A pyvista grid of 10-node tetrahedra as its 8 linear children per element (others as given).
+
+    Point data stay; cell data repeat over each element's children. For readers of a build
+    that work on linear tetrahedra (the report, point location).
+    """
+    import pyvista as pv
+
+    kind = int(pv.CellType.QUADRATIC_TETRA)
+    if kind not in grid.cells_dict:
+        return grid
+    points = np.asarray(grid.points, float)
+    children, parent = split_tet10(points, np.asarray(grid.cells_dict[kind], np.int64))
+    out = pv.UnstructuredGrid({pv.CellType.TETRA: children}, points)
+    for name in grid.point_data.keys():
+        out.point_data[name] = np.asarray(grid.point_data[name])
+    for name in grid.cell_data.keys():
+        out.cell_data[name] = np.asarray(grid.cell_data[name])[parent]
+    for name in grid.field_data.keys():
+        out.field_data[name] = np.asarray(grid.field_data[name])
+    return out
