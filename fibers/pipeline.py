@@ -199,7 +199,7 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
-        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, mesh.msh, surfaces.vtp, pools/"):
+        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
             outputs.write_all(tmp, result)
         manifest = outputs.manifest(result, case, inputs)
         if report:

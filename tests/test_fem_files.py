@@ -97,7 +97,7 @@ def test_xdmf_single_topology_grids_match_vtu(build):
 
 
 def test_round_trip_every_format(build):
-    # Round trip (STYLE.md): meshio reads every file back with the same points, cells, fields.
+    # Round trip: meshio reads every file back with the same points, cells, fields.
     vtu = meshio.read(build / "mesh.vtu")
     xdmf, facets, msh = (meshio.read(build / n) for n in ("mesh.xdmf", "facets.xdmf", "mesh.msh"))
     kind = vtu.cells[0].type

@@ -1,4 +1,4 @@
-"""Writing the output folder (DESIGN.md section 3.4): mesh files, surfaces, pools, manifest.
+"""Writing the output folder (the table in the README): mesh files, surfaces, pools, manifest.
 
 meshio owns the mesh formats; this module only maps our names onto its structures.
 """
