@@ -202,3 +202,13 @@ def test_readme_recipe_runs(build, index, capsys):
     finally:
         os.chdir(here)
     assert capsys.readouterr().out.strip()  # every recipe shows something
+
+
+@pytest.mark.parametrize("value, words", [(3, "between 1 and 2"), (1.5, "whole number"), ("2", "number")])
+def test_mesh_order_refused_with_a_clear_message(value, words):
+    from fibers.errors import InputError
+    from fibers.io.case import resolve_case
+
+    with pytest.raises(InputError, match=words) as err:
+        resolve_case({"input": {"contours": "c.csv"}, "mesh": {"order": value}}, name="case.toml")
+    assert "[mesh] order" in str(err.value) and "\n" not in str(err.value)
