@@ -28,6 +28,8 @@ def _parser() -> argparse.ArgumentParser:
     def build_options(q):
         q.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
         q.add_argument("--mesh-size", type=float, help="target tetrahedron edge length, mm")
+        q.add_argument("--mesh-order", type=int, choices=(1, 2),
+                       help="element order: 1 linear, 2 quadratic (10-node) tetrahedra")
         q.add_argument("--seed", type=int, help="seed of the sample-point pools")
         q.add_argument("--no-report", action="store_true", help="skip the report")
         q.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
@@ -124,6 +126,9 @@ def _override(case, args):
             raise InputError(f"--mesh-size {args.mesh_size:g}: must lie between 0.3 and 10 mm")
         values["mesh"]["size"] = args.mesh_size
         case = replace(case, mesh_size=args.mesh_size)
+    if getattr(args, "mesh_order", None) is not None:
+        values["mesh"]["order"] = args.mesh_order
+        case = replace(case, mesh_order=args.mesh_order)
     if args.seed is not None:
         if args.seed < 0:
             raise InputError(f"--seed {args.seed}: must be 0 or more")

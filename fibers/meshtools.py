@@ -47,3 +47,17 @@ def triangle_normals(points: np.ndarray, faces: np.ndarray) -> tuple[np.ndarray,
     n = np.cross(b - a, c - a)
     area2 = np.linalg.norm(n, axis=1)
     return n / np.maximum(area2, 1e-300)[:, None], 0.5 * area2
+
+
+def shared_edges(faces_a: np.ndarray, faces_b: np.ndarray) -> np.ndarray:
+    """Edges (E, 2) that belong both to a triangle of ``faces_a`` and to one of ``faces_b``.
+
+    Each edge keeps the direction it has in its ``faces_a`` triangle, so the edges of a ring
+    where two oriented surfaces meet all run the same way round.
+    """
+    def directed(faces):
+        return faces[:, [0, 1, 1, 2, 2, 0]].reshape(-1, 2)
+    a, b = directed(np.asarray(faces_a)), directed(np.asarray(faces_b))
+    n = int(max(a.max(initial=0), b.max(initial=0))) + 1
+    key = lambda e: np.sort(e, axis=1).astype(np.int64) @ np.array([n, 1], np.int64)  # noqa: E731
+    return a[np.isin(key(a), key(b))].astype(np.int64)

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from fibers import architecture, coordinates, mesh as mesh_stage, pools as pool_stage
-from fibers import segments, stack as stack_stage, surfaces as surface_stage
+from fibers import quadratic, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
 from fibers.errors import InputError
 from fibers.types import ENDO, EPI, BASE, RawContours
@@ -48,6 +48,8 @@ class Result:
     summary: dict = field(default_factory=dict)
     timings: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
+    # [mesh] order = 2: the 10-node elements; ``mesh`` is then their linear children
+    quadratic: quadratic.QuadraticMesh | None = None
 
 
 class _Clock:
@@ -82,8 +84,13 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
             stack = stack_stage.check_stack(contours, align_slices=case.align_slices)
         with clock.stage("surfaces", lambda: f"fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm"):
             surf = surface_stage.fit_surfaces(stack)
-        with clock.stage("mesh", lambda: f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"):
+        with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
             wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
+            quad = None
+            if getattr(case, "mesh_order", 1) == 2:
+                # every later stage works on the 8 linear children of each 10-node element
+                quad = quadratic.elevate(wall, surf)
+                wall = quad.linear
         with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None else "no landmarks"):
             septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
             aha = segments.label_cells(wall, septum)
@@ -94,6 +101,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
             coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector)
         with clock.stage("architecture", "fiber, sheet, sheet-normal"):
             arch = architecture.assign(coords, case.law, wall, septal=septum is not None)
+            if quad is not None:
+                quad = quadratic.with_cell_fields(quad, coords, case.law, septum)
         box = box or _contour_box(contours, case.pools.margin)
         with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
             pool_set = pool_stage.build_pools(wall, coords, case.law, septum, case.pools, box=box)
@@ -102,9 +111,17 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         log.warning("%s", message)
     result = Result(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                     septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
-                    timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught)
+                    timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
+                    quadratic=quad)
     result.summary = summarise(result)
     return result
+
+
+def _mesh_line(wall, quad) -> str:
+    if quad is None:
+        return f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"
+    return (f"{len(quad.tets):,} quadratic tetrahedra, {len(quad.points):,} nodes "
+            f"(fields on their {len(wall.tets):,} linear children)")
 
 
 def _contour_box(contours: RawContours, margin: float) -> Box:
@@ -140,7 +157,15 @@ def summarise(result: Result) -> dict:
                 "max": round(max(r["max_mm"] for r in rows), 3)} for s, rows in per_structure.items() if rows},
         "fit_residuals_per_slice": list(res),
         "slice_shifts_mm": {str(sl.slice_id): [round(float(v), 3) for v in sl.shift] for sl in result.stack.slices},
+        **_order_summary(result),
     }
+
+
+def _order_summary(result: Result) -> dict:
+    """Order 2 only: the 10-node mesh's counts, curved volumes and Jacobian check."""
+    if result.quadratic is None:
+        return {}
+    return {"mesh_order": 2, "quadratic": quadratic.summary(result.quadratic)}
 
 
 def build(case, out: str | Path, *, report: bool = True, include: dict | None = None,
@@ -174,7 +199,7 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
-        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, mesh.msh, surfaces.vtp, pools/"):
+        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
             outputs.write_all(tmp, result)
         manifest = outputs.manifest(result, case, inputs)
         if report:

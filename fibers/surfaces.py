@@ -93,6 +93,25 @@ class Surfaces:
         lam, mu, theta = _local_to_prolate(local, d, zc)
         return _metric(lam, mu, d) * (lam - self.lam(surface, mu, theta))
 
+    def project_local(self, surface: str, local: np.ndarray) -> np.ndarray:
+        """Points (K, 3) of the axis frame moved along their lambda coordinate line onto a surface.
+
+        Each surface is nearly ``lambda = const`` in its own system, so the lambda line crosses it
+        almost at right angles: for points a fraction of a mm away (the mid-points of the mesh's
+        boundary edges) the move is close to the shortest one, and the result lies on the
+        fitted surface exactly.
+        """
+        zc, d = self.systems[surface]
+        _lam, mu, theta = _local_to_prolate(np.asarray(local, float), d, zc)
+        return _prolate_to_local(self.lam(surface, mu, theta), mu, theta, d, zc)
+
+    def rim_local(self, surface: str, theta: np.ndarray) -> np.ndarray:
+        """Points (K, 3) of the axis frame where a surface meets the base plane, at angles theta."""
+        theta = np.asarray(theta, float)
+        pts = self.local_point(surface, self.base_mu(surface, theta), theta)
+        pts[:, 2] = 0.0  # the rim lies in the base plane exactly (as the mesh's rim rings do)
+        return pts
+
     def apex(self, surface: str) -> np.ndarray:
         """World position of a surface's apical pole (mu = 0)."""
         return self.axis.to_world(self.local_point(surface, np.array([0.0]), np.array([0.0])))[0]

@@ -14,6 +14,17 @@ import numpy as np
 ENDO, EPI, BASE = 1, 2, 3
 FACE_TAG_NAMES = {ENDO: "endo", EPI: "epi", BASE: "base"}
 
+# The 17 segments by number (Cerqueira et al., Circulation 2002); 0 marks cells left unlabelled.
+SEGMENT_NAMES = {
+    0: "not labelled",
+    1: "basal anterior", 2: "basal anteroseptal", 3: "basal inferoseptal", 4: "basal inferior",
+    5: "basal inferolateral", 6: "basal anterolateral",
+    7: "mid anterior", 8: "mid anteroseptal", 9: "mid inferoseptal", 10: "mid inferior",
+    11: "mid inferolateral", 12: "mid anterolateral",
+    13: "apical anterior", 14: "apical septal", 15: "apical inferior", 16: "apical lateral",
+    17: "apex",
+}
+
 
 @dataclass(frozen=True)
 class RawContours:

@@ -43,6 +43,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
+        "order": ("int", 1, 1, 2, "element order: 1 linear (4-node), 2 quadratic (10-node) tetrahedra"),
     },
     "fibers": {
         "preset": ("choice:none|bayer2012|streeter1969", "none", None, None,
@@ -101,6 +102,7 @@ class Case:
     pools: PoolSettings
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
     septal_sectors: str = "fixed"
+    mesh_order: int = 1                          # [mesh] order: 1 linear, 2 quadratic tetrahedra
 
 
 def read_case(path: str | Path) -> Case:
@@ -149,7 +151,8 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
                 law=law, pools=pools, values=values,
-                septal_sectors=values["segments"]["septal_sectors"])
+                septal_sectors=values["segments"]["septal_sectors"],
+                mesh_order=values["mesh"]["order"])
 
 
 def fiber_law(fib: dict) -> FiberLaw:

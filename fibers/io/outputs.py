@@ -1,4 +1,4 @@
-"""Writing the output folder (DESIGN.md section 3.4): mesh files, surfaces, pools, manifest.
+"""Writing the output folder (the table in the README): mesh files, surfaces, pools, manifest.
 
 meshio owns the mesh formats; this module only maps our names onto its structures.
 """
@@ -7,12 +7,13 @@ from __future__ import annotations
 
 import json
 import platform
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 import fibers
-from fibers.types import FACE_TAG_NAMES
+from fibers.types import BASE, ENDO, EPI, FACE_TAG_NAMES, SEGMENT_NAMES
 
 POINT_FIELDS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "e_rad",
                 "e_long", "e_circ", "frame_quality", "fiber", "sheet", "sheet_normal",
@@ -42,6 +43,8 @@ CONVENTIONS = {
     "base": "the plane of the most basal slice, normal to the long axis",
     "mass": "myocardial volume x 1.05 g/mL",
 }
+NODE_ORDER = ("VTK order: tetra corners 0-3, tetra10 adds the mid-edge nodes of edges (0,1) (1,2) (2,0) "
+              "(0,3) (1,3) (2,3); triangle6 adds (0,1) (1,2) (2,0); line3 is end, end, middle")
 
 
 def point_data(result) -> dict:
@@ -61,35 +64,175 @@ def cell_data(result) -> dict:
 
 
 def write_all(folder: Path, result) -> None:
-    """Write mesh.vtu, mesh.xdmf (+ .h5), mesh.msh, surfaces.vtp and the pools.
+    """Write mesh.vtu, mesh.xdmf + facets.xdmf (+ .h5), mesh.msh, surfaces.vtp and the pools.
 
     Uncompressed binary throughout: zlib compression tripled the writing time for files that
     shrink by less than half.
     """
-    import meshio
-
     from fibers.io.pools import write_pools
 
-    wall = result.mesh
-    pdata, cdata = point_data(result), cell_data(result)
-    meshio.Mesh(wall.points, [("tetra", wall.tets)], point_data=pdata,
-                cell_data={k: [v] for k, v in cdata.items()}).write(folder / "mesh.vtu", compression=None)
-
-    # finite-element copies: the tetrahedra plus the tagged boundary triangles
-    faces = wall.faces
-    blocks = [("tetra", wall.tets), ("triangle", faces)]
-    boundary = [np.zeros(len(wall.tets), np.int32), wall.face_tags.astype(np.int32)]
-    padded = {k: [v, np.zeros((len(faces),) + v.shape[1:], v.dtype)] for k, v in cdata.items()}
-    meshio.Mesh(wall.points, blocks, point_data=pdata,
-                cell_data={"boundary": boundary, **padded}).write(folder / "mesh.xdmf", compression=None)
-    phys = [np.full(len(wall.tets), WALL_TAG, np.int32), wall.face_tags.astype(np.int32)]
-    msh = meshio.Mesh(wall.points, blocks, cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys})
-    msh.field_data = {"wall": np.array([WALL_TAG, 3]),
-                      **{name: np.array([tag, 2]) for tag, name in FACE_TAG_NAMES.items()}}
-    meshio.write(folder / "mesh.msh", msh, file_format="gmsh22", binary=True)
-
+    fem = fem_mesh(result)
+    write_vtu(folder / "mesh.vtu", fem)
+    write_xdmf(folder, fem)
+    write_msh(folder / "mesh.msh", fem)
     write_surfaces(folder / "surfaces.vtp", result)
     write_pools(folder, result.pools)
+
+
+# ----------------------------------------------------------------------------- mesh files
+
+RING_TAGS = {ENDO: 1, EPI: 2}  # dimension-1 tags in mesh.msh: the rim of face tag k on the base
+RING_NAMES = {ENDO: "endo_base_ring", EPI: "epi_base_ring"}
+CELL_TYPES = {1: ("tetra", "triangle", "line"), 2: ("tetra10", "triangle6", "line3")}
+
+
+@dataclass(frozen=True)
+class FemMesh:
+    """The wall as the mesh files carry it: one volume cell type, its boundary, its base rings.
+
+    ``order`` 1: ``tetra`` / ``triangle`` / ``line``; 2: ``tetra10`` / ``triangle6`` / ``line3``
+    (meshio's names, VTK node order). ``point_data`` and ``cell_data`` map field names to
+    arrays over the points and the volume cells, whatever fields the build carries.
+    """
+
+    order: int
+    points: np.ndarray
+    cells: np.ndarray
+    faces: np.ndarray
+    face_tags: np.ndarray
+    rings: dict
+    point_data: dict
+    cell_data: dict
+
+    @property
+    def types(self) -> tuple[str, str, str]:
+        return CELL_TYPES[self.order]
+
+
+def fem_mesh(result) -> FemMesh:
+    """The mesh files' view of a build: linear, or the 10-node elements of ``[mesh] order = 2``."""
+    from fibers import meshtools, quadratic
+
+    pdata, cdata = point_data(result), cell_data(result)
+    quad = getattr(result, "quadratic", None)
+    if quad is not None:
+        return FemMesh(2, quad.points, quad.tets, quad.faces, quad.face_tags, quad.rings, pdata,
+                       quadratic.parent_cell_data(quad, cdata))
+    wall = result.mesh
+    base = wall.faces[wall.face_tags == BASE]
+    rings = {tag: meshtools.shared_edges(wall.faces[wall.face_tags == tag], base) for tag in RING_TAGS}
+    return FemMesh(1, wall.points, wall.tets, wall.faces, wall.face_tags, rings, pdata, cdata)
+
+
+def field_lines() -> dict:
+    """The conventions every mesh file carries: the manifest's lines, the tags, the segment names."""
+    return {**CONVENTIONS,
+            "aha_segment_names": {str(k): v for k, v in SEGMENT_NAMES.items()},
+            "node_order": NODE_ORDER,
+            "base_rings": "mesh.msh dimension-1 groups: 1 endo_base_ring (endocardium meets base), "
+                          "2 epi_base_ring (epicardium meets base)"}
+
+
+def write_vtu(path: Path, fem: FemMesh) -> None:
+    """mesh.vtu with the convention lines as field data ``conventions`` (UTF-8 JSON bytes).
+
+    meshio writes no field data to VTU, and its reader refuses VTK's string arrays, so the text
+    travels as one UInt8 array, spliced in as the grid's first child where VTK expects it.
+    """
+    import meshio
+
+    mesh = meshio.Mesh(fem.points, [(fem.types[0], fem.cells)], point_data=fem.point_data,
+                       cell_data={k: [v] for k, v in fem.cell_data.items()})
+    mesh.write(path, compression=None)  # meshio's writer wants a file name, not a buffer
+    text = Path(path).read_bytes()
+    anchor = b"<UnstructuredGrid>"
+    at = text.index(anchor) + len(anchor)
+    Path(path).write_bytes(text[:at] + _vtu_field_data({"conventions": field_lines()}) + text[at:])
+
+
+def _vtu_field_data(texts: dict) -> bytes:
+    import base64
+
+    arrays = []
+    for name, value in texts.items():
+        data = json.dumps(value, indent=1).encode("utf-8")
+        encoded = base64.b64encode(np.uint32(len(data)).tobytes() + data).decode("ascii")
+        arrays.append(f'<DataArray type="UInt8" Name="{name}" NumberOfTuples="{len(data)}" '
+                      f'format="binary">{encoded}</DataArray>')
+    return ("<FieldData>" + "".join(arrays) + "</FieldData>").encode("ascii")
+
+
+def write_xdmf(folder: Path, fem: FemMesh) -> None:
+    """mesh.xdmf (volume cells, point and cell fields) and facets.xdmf (boundary, ``boundary`` tag).
+
+    One cell type per grid, both grids on the same points, as FEniCS-style codes read them:
+    grid ``mesh`` with the segment labels as its first attribute, grid ``facets`` with the
+    face tags. Each grid carries the convention lines as XDMF ``Information`` elements.
+    """
+    import meshio
+
+    volume, face = fem.types[:2]
+    meshio.Mesh(fem.points, [(volume, fem.cells)], point_data=fem.point_data,
+                cell_data={k: [v] for k, v in fem.cell_data.items()}).write(folder / "mesh.xdmf", compression=None)
+    meshio.Mesh(fem.points, [(face, fem.faces)],
+                cell_data={"boundary": [fem.face_tags.astype(np.int32)]}).write(folder / "facets.xdmf",
+                                                                                compression=None)
+    segments = {name: (number, 3) for number, name in SEGMENT_NAMES.items() if number > 0}
+    _describe_xdmf(folder / "mesh.xdmf", "mesh", segments,
+                   "aha_segment numbers and names; cell fields per element, point fields per node",
+                   first="aha_segment")
+    faces = {name: (tag, 2) for tag, name in FACE_TAG_NAMES.items()}
+    _describe_xdmf(folder / "facets.xdmf", "facets", faces, "boundary: 1 endo, 2 epi, 3 base")
+
+
+def _describe_xdmf(path: Path, grid_name: str, tags: dict, tags_line: str, *, first: str | None = None) -> None:
+    """Name the grid, put attribute ``first`` first, add one ``Information`` per convention line.
+
+    Readers that take a grid's first attribute as its cell tags (FEniCS-style mesh-tag
+    readers) then find the segment labels.
+
+    meshio's XDMF reader parses the text of every ``Information`` element as a map of tag
+    names (``<map key=NAME dim=D>TAG</map>``, read as its ``field_data``), so each one gets such
+    a text: empty for the convention lines, the grid's tag names for the last (``tags``).
+    """
+    import xml.etree.ElementTree as ET
+
+    tree = ET.parse(path)
+    grid = tree.getroot().find("Domain/Grid")
+    grid.set("Name", grid_name)
+    moved = [a for a in grid.findall("Attribute") if a.get("Name") == first]
+    for att in moved:
+        grid.remove(att)
+        grid.insert(list(grid).index(grid.find("Topology")) + 1, att)
+    texts = {}
+    for key, line in field_lines().items():
+        value = line if isinstance(line, str) else json.dumps(line)
+        info = ET.SubElement(grid, "Information", Name=key, Value=value)
+        info.text = texts.setdefault("<main/>", f"@@{len(texts)}@@")
+    info = ET.SubElement(grid, "Information", Name="tags", Value=tags_line)
+    tag_map = "<main>" + "".join(f'<map key="{k}" dim="{d}">{t}</map>' for k, (t, d) in tags.items()) + "</main>"
+    info.text = texts.setdefault(tag_map, f"@@{len(texts)}@@")
+    ET.indent(tree)
+    xml = ET.tostring(tree.getroot(), encoding="unicode")
+    for content, placeholder in texts.items():
+        xml = xml.replace(placeholder, f"<![CDATA[{content}]]>")
+    Path(path).write_text('<?xml version="1.0"?>\n' + xml + "\n")
+
+
+def write_msh(path: Path, fem: FemMesh) -> None:
+    """mesh.msh (gmsh 2.2 binary): volume group 1 ``wall``, face groups 1-3, base rings 1-2 (dimension 1)."""
+    import meshio
+
+    volume, face, line = fem.types
+    rings = [fem.rings[tag] for tag in RING_TAGS]
+    blocks = [(volume, fem.cells), (face, fem.faces)] + [(line, r) for r in rings]
+    phys = [np.full(len(fem.cells), WALL_TAG, np.int32), fem.face_tags.astype(np.int32)] + \
+           [np.full(len(r), RING_TAGS[tag], np.int32) for tag, r in zip(RING_TAGS, rings)]
+    msh = meshio.Mesh(fem.points, blocks, cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys})
+    msh.field_data = {"wall": np.array([WALL_TAG, 3]),
+                      **{name: np.array([tag, 2]) for tag, name in FACE_TAG_NAMES.items()},
+                      **{RING_NAMES[tag]: np.array([t, 1]) for tag, t in RING_TAGS.items()}}
+    meshio.write(path, msh, file_format="gmsh22", binary=True)
 
 
 def write_surfaces(path: Path, result) -> None:

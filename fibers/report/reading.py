@@ -142,7 +142,9 @@ def load_build(folder: Path, manifest: dict) -> Build:
     import pyvista as pv
 
     try:
-        mesh = pv.read(folder / "mesh.vtu")
+        from fibers.quadratic import linear_grid
+
+        mesh = linear_grid(pv.read(folder / "mesh.vtu"))  # an order-2 build: its linear children
         surfaces = pv.read(folder / "surfaces.vtp")
     except (FileNotFoundError, OSError, ValueError) as err:
         raise InputError(f"{folder}: cannot read mesh.vtu or surfaces.vtp ({err}); build the folder again") from None
