@@ -261,9 +261,12 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
     """
     from scipy.spatial import cKDTree
 
-    dist, idx = cKDTree(points).query(nodes, k=neighbours)
+    tree = cKDTree(points)
+    dist, idx = tree.query(nodes, k=neighbours)
     spacing = float(np.median(dist[:, 0]))
-    reach = max(5.0, 5.0 * float(np.median(dist[:, -1])))
+    # the samples' own spacing sets the scale of "far": nearest-neighbour distance among them
+    own = float(np.median(tree.query(points, k=2)[0][:, 1]))
+    reach = max(5.0, 5.0 * own)
     far = dist[:, 0] > reach
     if far.any():
         k = int(np.argmax(far))
@@ -290,7 +293,7 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
     out = np.stack([np.einsum("nk,nkc->nc", weights, u[idx]) for u in displacement])  # frame by frame: less memory
     fit = {"method": "weighted least squares of an affine map per node over its nearest scattered points "
                      "(tricube weights, Cleveland 1979)",
-           "neighbours": neighbours, "median_nearest_mm": round(spacing, 4),
+           "neighbours": neighbours, "median_nearest_mm": round(spacing, 4), "sample_spacing_mm": round(own, 4),
            "median_reach_mm": round(float(np.median(dist[:, -1])), 4), "points": int(len(points))}
     return out, fit
 
