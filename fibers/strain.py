@@ -19,6 +19,9 @@ Two entry points:
   constant in each element), and :func:`study` runs the whole per-cell, per-segment analysis
   behind ``fibers strain``.
 
+Order-2 meshes (tetra10): F at the four Gauss points of each cell from the quadratic shape
+functions (isoparametric), cell values the Gauss-weighted means over the cell.
+
 Reference frames per cell: the radial / circumferential / longitudinal frame is the mean of the
 cell's nodal ``e_rad`` and ``e_long``, re-orthonormalised (radial first, longitudinal made
 orthogonal to it, ``e_circ = e_long x e_rad`` as in the build); fiber, sheet and sheet-normal are
@@ -51,7 +54,7 @@ CONVENTIONS = {
     "frames": "per cell at the reference: mean nodal e_rad and e_long re-orthonormalised (radial first), e_circ = e_long x e_rad; fiber/sheet/sheet_normal from the cell-wise triad of mesh.vtu",
     "segment_means": "volume-weighted over the reference volume of each AHA segment's tetrahedra; segment 0 is the whole wall; inverted cells (J <= 0) are left out",
     "nodal_fields": "volume-weighted average of the cells around each node",
-    "order_2_meshes": "tetra10 cells use their four corner nodes (linear gradient per cell)",
+    "order_2_meshes": "tetra10 cells: F of the quadratic shape functions at the 4 Gauss points of each cell, cell values the Gauss-weighted means; the frames are the cell's",
 }
 
 
@@ -59,7 +62,7 @@ CONVENTIONS = {
 
 def green_lagrange(F: np.ndarray) -> np.ndarray:
     """Green-Lagrange strain ``E = (F^T F - I) / 2`` of ``F`` (..., 3, 3), same shape."""
-    C = np.einsum("...ki,...kj->...ij", F, F)
+    C = np.swapaxes(F, -1, -2) @ F     # batched matmul: much faster than einsum here
     return 0.5 * (C - np.eye(3))
 
 
@@ -104,6 +107,8 @@ def kinematics(F: np.ndarray, frames: dict, *, quantities=QUANTITIES) -> dict[st
     """
     F = np.asarray(F, dtype=float)
     E = green_lagrange(F)
+    local = _in_triads(E, frames)
+    index = {"r": ("rcl", 0), "c": ("rcl", 1), "l": ("rcl", 2), "f": ("fsn", 0), "s": ("fsn", 1), "n": ("fsn", 2)}
     out = {}
     for name in quantities:
         if name == "J":
@@ -112,16 +117,30 @@ def kinematics(F: np.ndarray, frames: dict, *, quantities=QUANTITIES) -> dict[st
         pair = name.split("_")[1]
         if pair == "f" or name == "lambda_f":
             pair = "ff"
-        dirs = [frames.get(DIRECTIONS[k]) for k in pair]
-        if any(d is None for d in dirs):
-            continue
-        value = component(E, np.asarray(dirs[0], float), np.asarray(dirs[1], float))
+        (ta, ia), (tb, ib) = index[pair[0]], index[pair[1]]
+        if ta == tb and ta in local:
+            value = local[ta][..., ia, ib]
+        else:
+            dirs = [frames.get(DIRECTIONS[k]) for k in pair]
+            if any(d is None for d in dirs):
+                continue
+            value = component(E, np.asarray(dirs[0], float), np.asarray(dirs[1], float))
         if name.startswith("E_"):
             out[name] = value
         elif name == "lambda_f":
             out[name] = _stretch(value)
         else:
             out[name] = _stretch(value) - 1.0
+    return out
+
+
+def _in_triads(E: np.ndarray, frames: dict) -> dict:
+    """E written in the (r, c, l) and (f, s, n) triads present in ``frames``: Q E Q^T, rows of Q the directions."""
+    out = {}
+    for key, names in (("rcl", ("e_rad", "e_circ", "e_long")), ("fsn", ("fiber", "sheet", "sheet_normal"))):
+        if all(frames.get(n) is not None for n in names):
+            Q = np.stack([np.asarray(frames[n], float) for n in names], axis=-2)    # (n, 3, 3)
+            out[key] = Q @ E @ np.swapaxes(Q, -1, -2)
     return out
 
 
@@ -169,7 +188,59 @@ def deformation_gradients(grads: np.ndarray, tets: np.ndarray, displacement: np.
     ndarray (M, 3, 3) or (T, M, 3, 3); ``F[..., i, j] = delta_ij + du_i / dX_j``
     """
     u = np.asarray(displacement, float)[..., tets, :]   # (..., M, 4, 3)
-    return np.eye(3) + np.einsum("...mai,maj->...mij", u, grads)
+    return np.eye(3) + np.swapaxes(u, -1, -2) @ grads
+
+
+# ----------------------------------------------------------------------------- order 2 (tetra10)
+
+# mid-edge nodes 4..9 of a tetra10 cell lie on these corner pairs (VTK's and meshio's order)
+TETRA10_EDGES = ((0, 1), (1, 2), (0, 2), (0, 3), (1, 3), (2, 3))
+# the 4-point Gauss rule on a tetrahedron, exact for polynomials of degree 2: barycentric
+# coordinates (a, b, b, b) and permutations, equal weights (Zienkiewicz & Taylor, The Finite
+# Element Method, vol. 1, table of tetrahedral rules; from memory)
+_A, _B = 0.5854101966249685, 0.1381966011250105
+GAUSS4 = np.full((4, 4), _B) + np.eye(4) * (_A - _B)
+
+
+def _p2_reference_gradients() -> np.ndarray:
+    """d N_a / d xi (4 points, 10 functions, 3) of the quadratic shape functions at GAUSS4."""
+    dL = np.array([[-1.0, -1.0, -1.0], [1.0, 0, 0], [0, 1.0, 0], [0, 0, 1.0]])  # d L_i / d xi
+    out = np.empty((4, 10, 3))
+    for q, L in enumerate(GAUSS4):
+        for i in range(4):                                   # corners: N_i = L_i (2 L_i - 1)
+            out[q, i] = (4.0 * L[i] - 1.0) * dL[i]
+        for e, (i, j) in enumerate(TETRA10_EDGES):           # edges: N_ij = 4 L_i L_j
+            out[q, 4 + e] = 4.0 * (L[i] * dL[j] + L[j] * dL[i])
+    return out
+
+
+def quadrature_gradients(points: np.ndarray, cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Shape-function gradients of tetra10 cells at the 4 Gauss points, and the points' weights.
+
+    The geometry is isoparametric (curved cells allowed): ``dX/dxi = sum_a X_a (dN_a/dxi)^T``,
+    ``grad N_a = (dX/dxi)^-T dN_a/dxi``, weight ``det(dX/dxi) / 24``.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    cells : ndarray (M, 10) int, VTK node order (corners, then the edges of TETRA10_EDGES)
+
+    Returns
+    -------
+    grads : ndarray (M, 4, 10, 3), 1/mm
+    weights : ndarray (M, 4), mm^3, signed (their sum is the cell's volume)
+    """
+    ref = _p2_reference_gradients()
+    jac = np.einsum("mai,qaj->mqij", points[cells], ref)       # dX_i / dxi_j
+    inv = np.linalg.inv(jac)
+    grads = np.einsum("qaj,mqji->mqai", ref, inv)
+    return grads, jacobian(jac) / 24.0
+
+
+def quadrature_deformation_gradients(grads: np.ndarray, cells: np.ndarray, displacement: np.ndarray) -> np.ndarray:
+    """F (M, 4, 3, 3) at the Gauss points of tetra10 cells from nodal displacements (N, 3)."""
+    u = np.asarray(displacement, float)[cells]           # (M, 10, 3)
+    return np.eye(3) + np.swapaxes(u, -1, -2)[:, None] @ grads
 
 
 # ----------------------------------------------------------------------------- frames per cell
@@ -228,27 +299,34 @@ def segment_means(values: np.ndarray, volume: np.ndarray, labels: np.ndarray, va
     -------
     ndarray (T, n_segments); NaN where a segment has no valid cell
     """
+    from scipy import sparse
+
+    m = len(labels)
     w = np.where(valid, volume[None, :], 0.0)
-    onehot = np.zeros((n_segments, len(labels)))
-    onehot[labels, np.arange(len(labels))] = 1.0
-    onehot[0] = 1.0
-    total = w @ onehot.T
+    # membership (M, n_segments): each cell in its segment and in segment 0, the whole wall
+    rows = np.concatenate([np.arange(m), np.arange(m)])
+    cols = np.concatenate([np.asarray(labels, int), np.zeros(m, int)])
+    member = sparse.csr_matrix((np.ones(2 * m), (rows, cols)), shape=(m, n_segments))
+    member.sum_duplicates()
+    member.data[:] = 1.0       # unlabelled cells (label 0) belong to segment 0 once
+    total = np.asarray((member.T @ w.T).T)
+    weighted = np.asarray((member.T @ (np.where(valid, values, 0.0) * w).T).T)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(total > 0, (np.where(valid, values, 0.0) * w) @ onehot.T / total, np.nan)
+        return np.where(total > 0, weighted / np.where(total > 0, total, 1.0), np.nan)
 
 
 def nodal_average(values: np.ndarray, tets: np.ndarray, volume: np.ndarray, n_nodes: int) -> np.ndarray:
     """Recovered nodal values (T, N): the volume-weighted mean of the cells around each node.
 
-    Nodes used by no cell (e.g. the mid-edge nodes of an order-2 mesh) get the mean of none: NaN
-    would break viewers, so they get 0.
+    ``tets`` may be (M, 4) or (M, 10): every node listed for a cell takes its value. Nodes used by
+    no cell get the mean of none: NaN would break viewers, so they get 0.
     """
     from scipy import sparse
 
-    corner = tets[:, :4]
-    rows = corner.ravel()
-    cols = np.repeat(np.arange(len(tets)), 4)
-    A = sparse.csr_matrix((np.repeat(np.abs(volume), 4), (rows, cols)), shape=(n_nodes, len(tets)))
+    k = tets.shape[1]
+    rows = tets.ravel()
+    cols = np.repeat(np.arange(len(tets)), k)
+    A = sparse.csr_matrix((np.repeat(np.abs(volume), k), (rows, cols)), shape=(n_nodes, len(tets)))
     weight = np.asarray(A.sum(axis=1)).ravel()
     weight[weight == 0] = 1.0
     return np.asarray(A @ np.asarray(values, float).T).T / weight
@@ -292,25 +370,43 @@ def study(points: np.ndarray, tets: np.ndarray, displacement: np.ndarray, frames
     Parameters
     ----------
     points : ndarray (N, 3), mm, the reference geometry
-    tets : ndarray (M, 4) int (corner nodes)
+    tets : ndarray (M, 4) or (M, 10) int
+        Linear cells (one constant F each) or tetra10 cells in VTK node order (F at the 4 Gauss
+        points, cell values the Gauss-weighted means, inverted when J <= 0 at any point).
     displacement : ndarray (T, N, 3), mm
     frames : dict of ndarray (M, 3), from :func:`cell_frames`
     labels : ndarray (M,) int, AHA segment 1-17 (0 = not labelled)
     """
-    grads, volume = shape_gradients(points, tets)
-    volume = np.abs(volume)
+    quadratic = tets.shape[1] == 10
+    if quadratic:
+        grads, weights = quadrature_gradients(points, tets)
+        weights = np.abs(weights)
+        volume = weights.sum(axis=1)
+        at_points = {k: np.repeat(v, 4, axis=0) for k, v in frames.items()}   # cell frames at its 4 points
+    else:
+        grads, volume = shape_gradients(points, tets)
+        volume = np.abs(volume)
     cell = {q: np.empty((len(displacement), len(tets))) for q in QUANTITIES}
+    lowest_J = np.empty((len(displacement), len(tets)))
     for t, u in enumerate(displacement):   # one frame at a time keeps (M, 3, 3) temporaries small
-        values = kinematics(deformation_gradients(grads, tets, u), frames)
+        if quadratic:
+            F = quadrature_deformation_gradients(grads, tets, u).reshape(-1, 3, 3)
+            values = {q: v.reshape(-1, 4) for q, v in kinematics(F, at_points).items()}
+            lowest_J[t] = values["J"].min(axis=1)
+            # cell values: the Gauss-weighted mean over the cell (a quadrature of the cell's mean)
+            values = {q: (v * weights).sum(axis=1) / volume for q, v in values.items()}
+        else:
+            values = kinematics(deformation_gradients(grads, tets, u), frames)
+            lowest_J[t] = values["J"]
         for q in QUANTITIES:
             cell[q][t] = values.get(q, np.nan)
-    inverted = cell["J"] <= 0.0
+    inverted = lowest_J <= 0.0
     labels = np.asarray(labels, int)
     valid = ~inverted
     segments = {q: segment_means(v, volume, labels, valid) for q, v in cell.items()}
     abs_dev = segment_means(np.abs(cell["J"] - 1.0), volume, labels, valid)
     vol_ml = _segment_volumes(volume, labels) / 1000.0
-    centroids = points[tets].mean(axis=1)
+    centroids = points[tets[:, :4]].mean(axis=1)
     return StrainStudy(cell=cell, segments=segments, volume_ml=vol_ml, inverted=inverted,
                        abs_J_minus_1=abs_dev, centroids=centroids, labels=labels, volume=volume)
 

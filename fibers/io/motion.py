@@ -45,12 +45,14 @@ class BuildMesh:
     """The reference geometry and fields of a finished build, as ``fibers strain`` needs them.
 
     ``tets`` are the corner nodes (M, 4) of every tetrahedron (of tetra10 cells too: their
-    first four nodes); ``order`` is 1 or 2.
+    first four nodes); ``cells`` the full connectivity, (M, 4) or (M, 10) in VTK node order;
+    ``order`` is 1 or 2.
     """
 
     folder: Path
     points: np.ndarray
     tets: np.ndarray
+    cells: np.ndarray
     order: int
     point_fields: dict
     cell_fields: dict
@@ -86,7 +88,12 @@ def read_build_mesh(folder) -> BuildMesh:
     if not blocks:
         raise InputError(f"{folder}/mesh.vtu holds no tetrahedra; build the folder again")
     tets = np.concatenate([b.data[:, :4] for _, b in blocks]).astype(np.int64)
-    order = 2 if any(b.type == "tetra10" for _, b in blocks) else 1
+    order = 2 if all(b.type == "tetra10" for _, b in blocks) else 1
+    cells = tets
+    if order == 2:
+        cells = _vtk_tetra10(folder, np.asarray(mesh.points, np.float64),
+                             np.concatenate([b.data for _, b in blocks]).astype(np.int64))
+        order = 2 if cells.shape[1] == 10 else 1
     need = ("e_rad", "e_long")
     missing = [k for k in need if k not in mesh.point_data]
     if missing:
@@ -101,9 +108,34 @@ def read_build_mesh(folder) -> BuildMesh:
     if stored is not None and stored != checksum:
         raise InputError(f"{folder}/mesh.vtu has changed since it was built (mesh checksum "
                          f"{checksum[:12]} differs from the manifest's {stored[:12]}); build the folder again")
-    return BuildMesh(folder=folder, points=points, tets=tets, order=order,
+    return BuildMesh(folder=folder, points=points, tets=tets, cells=cells, order=order,
                      point_fields={k: np.asarray(v, float) for k, v in mesh.point_data.items()},
                      cell_fields=cell_fields, labels=labels, checksum=checksum, manifest=manifest)
+
+
+def _vtk_tetra10(folder: Path, points: np.ndarray, cells: np.ndarray) -> np.ndarray:
+    """tetra10 connectivity in VTK node order, or the corners alone if the order is not recognised.
+
+    VTK (and meshio) put the mid-edge nodes on edges 01, 12, 02, 03, 13, 23; gmsh's own files
+    swap the last two. Each mid-edge node must lie near the middle of its edge (a curved
+    boundary moves it by a fraction of the edge's length at most).
+    """
+    import warnings
+
+    from fibers.strain import TETRA10_EDGES
+
+    def fits(order):
+        pairs = np.array(TETRA10_EDGES)
+        mid = points[cells[:, 4:][:, order]]
+        a, b = points[cells[:, pairs[:, 0]]], points[cells[:, pairs[:, 1]]]
+        off = np.linalg.norm(mid - 0.5 * (a + b), axis=2) / np.maximum(np.linalg.norm(a - b, axis=2), 1e-12)
+        return float(off.max()) < 0.3
+    for order in ([0, 1, 2, 3, 4, 5], [0, 1, 2, 3, 5, 4]):
+        if fits(order):
+            return np.concatenate([cells[:, :4], cells[:, 4:][:, order]], axis=1)
+    warnings.warn(f"{folder}/mesh.vtu: the mid-edge nodes of its tetra10 cells are not in a known order; "
+                  "strain is computed from the corner nodes (linear gradient per cell)")
+    return cells[:, :4]
 
 
 @dataclass(frozen=True)

@@ -52,7 +52,7 @@ def analyse(build_dir, motion_path) -> StrainRun:
         mesh = motion_io.read_build_mesh(build_dir)
         motion = motion_io.read_motion(motion_path, mesh)
         frames = strain.cell_frames(mesh.tets, mesh.point_fields, mesh.cell_fields)
-        result = strain.study(mesh.points, mesh.tets, motion.displacement, frames, mesh.labels)
+        result = strain.study(mesh.points, mesh.cells, motion.displacement, frames, mesh.labels)
         _warn_inverted(result, mesh)
         if not (mesh.labels > 0).any():
             warnings.warn("the build has no AHA segment labels (no landmarks): only segment 0, the whole wall, is reported")
@@ -67,16 +67,30 @@ def nodal_fields(mesh, motion, result) -> dict:
 
     F is recovered at each node as the volume-weighted mean of the cells around it, and the
     quantities are computed from that F on the build's nodal frames (so nodal J is the
-    determinant of a recovered F, not a mean of determinants).
+    determinant of a recovered F, not a mean of determinants). For tetra10 cells the cell's F is
+    the Gauss-weighted mean of its four Gauss-point values.
     """
-    grads, volume = strain.shape_gradients(mesh.points, mesh.tets)
+    cells = mesh.cells
+    if cells.shape[1] == 10:
+        grads, weights = strain.quadrature_gradients(mesh.points, cells)
+        weights = np.abs(weights)
+        volume = weights.sum(axis=1)
+
+        def cell_F(u):
+            Fq = strain.quadrature_deformation_gradients(grads, cells, u)
+            return np.einsum("mq,mqij->mij", weights, Fq) / volume[:, None, None]
+    else:
+        grads, volume = strain.shape_gradients(mesh.points, cells)
+
+        def cell_F(u):
+            return strain.deformation_gradients(grads, cells, u)
     frames = {k: mesh.point_fields[k] for k in NODAL_DIRECTIONS if k in mesh.point_fields}
     out = {q: np.empty((len(motion.displacement), len(mesh.points))) for q in strain.QUANTITIES}
+    unused = ~np.isin(np.arange(len(mesh.points)), cells)
     for t, u in enumerate(motion.displacement):
-        F = strain.deformation_gradients(grads, mesh.tets, u).reshape(len(mesh.tets), 9)
-        Fn = strain.nodal_average(F.T, mesh.tets, volume, len(mesh.points)).T.reshape(-1, 3, 3)
-        unused = ~np.isin(np.arange(len(mesh.points)), mesh.tets)
-        Fn[unused] = np.eye(3)     # mid-edge nodes of order-2 meshes: no corner cell around them
+        F = cell_F(u).reshape(len(cells), 9)
+        Fn = strain.nodal_average(F.T, cells, volume, len(mesh.points)).T.reshape(-1, 3, 3)
+        Fn[unused] = np.eye(3)     # nodes of no cell: a neutral value rather than NaN for viewers
         values = strain.kinematics(Fn, frames)
         for q in strain.QUANTITIES:
             out[q][t] = values.get(q, np.nan)
@@ -101,7 +115,8 @@ def summarise(mesh, motion, result, nodal, notes) -> dict:
     valid = ~result.inverted
     w = np.where(valid, vol, 0.0)
     per_frame = (dev * w).sum(axis=1) / np.maximum(w.sum(axis=1), 1e-300)
-    lumped = np.bincount(mesh.tets.ravel(), weights=np.repeat(vol / 4.0, 4), minlength=len(mesh.points))
+    lumped = np.bincount(mesh.cells.ravel(), weights=np.repeat(vol / mesh.cells.shape[1], mesh.cells.shape[1]),
+                         minlength=len(mesh.points))
     nodal_dev = (np.abs(nodal["J"] - 1.0) * lumped).sum(axis=1) / lumped.sum()
     seg_J = result.segments["J"]
     present = [int(s) for s in range(18) if result.volume_ml[s] > 0]
@@ -159,7 +174,7 @@ def write_time_series(folder: Path, run: StrainRun) -> None:
     times = np.where(np.isfinite(times), times, np.arange(len(times)))
     # meshio's TimeSeriesWriter opens its .h5 by bare name in the working directory
     with contextlib.chdir(folder), meshio.xdmf.TimeSeriesWriter("strain.xdmf") as writer:
-        writer.write_points_cells(mesh.points, [("tetra", mesh.tets)])
+        writer.write_points_cells(mesh.points, [("tetra10" if mesh.cells.shape[1] == 10 else "tetra", mesh.cells)])
         for t, tm in enumerate(times):
             point_data = {"displacement": run.motion.displacement[t].astype(np.float32)}
             point_data.update({q: v[t].astype(np.float32) for q, v in run.nodal.items()})
