@@ -45,6 +45,8 @@ def _parser() -> argparse.ArgumentParser:
     k.add_argument("motion", type=Path, help="MOTION.npz: displacement (frames, nodes, 3) mm, or points + displacement")
     k.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
     k.add_argument("--no-report", action="store_true", help="skip the report")
+    k.add_argument("--fit-degree", type=int, choices=(1, 2), default=1,
+                   help="local fit of scattered samples: 1 affine (default), 2 quadratic")
     k.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
@@ -112,7 +114,8 @@ def _dispatch(args) -> int:
     if args.command == "strain":
         from fibers.io.strainfiles import write_strain_folder
 
-        write_strain_folder(args.folder, args.motion, args.out, report=not args.no_report)
+        write_strain_folder(args.folder, args.motion, args.out, report=not args.no_report,
+                            fit_degree=args.fit_degree)
         return 0
     if args.command == "report":
         from fibers import report

@@ -169,19 +169,22 @@ def test_torsion_gives_E_cl_of_the_closed_form_sign_and_size(analysed, truth):
     assert abs(got[0] - exact[0]) < 0.1 * abs(exact[0])
 
 
-def test_scattered_input_from_a_pool_matches_the_node_input(demo, analysed, tmp_path):
-    # the same motion sampled at the myocardium pool's points, brought to the nodes by the local
-    # affine fit: segment means within 0.01 of the node input (the bound)
+@pytest.mark.parametrize("degree, count", [(1, None), (2, 30000)])
+def test_scattered_input_from_a_pool_matches_the_node_input(demo, analysed, tmp_path, degree, count):
+    # the same motion sampled at the myocardium pool's points (all 100k of them for the affine fit,
+    # 30k for the quadratic one), brought to the nodes by the local fit: segment means within 0.01
+    # of the node input (the bound)
     from fibers import pools
 
     pool = pools.load(demo / "pools" / "myocardium.npz")
-    rng = np.random.default_rng(0)
-    pts = pool["points"][rng.permutation(len(pool["points"]))[:30000]]
+    pts = pool["points"]
+    if count:
+        pts = pts[np.random.default_rng(0).permutation(len(pts))[:count]]
     cycle = demo_motion.IsochoricCycle(ventricle.demo_subject())
     motion_io.write_motion(tmp_path / "scattered.npz", cycle.displacement(pts), time_ms=cycle.time_ms, points=pts)
-    run = strainfiles.analyse(demo, tmp_path / "scattered.npz")
-    assert run.motion.source == "scattered"
-    for q in ("E_rr", "E_cc", "E_ll", "E_ff", "E_cl", "J", "strain_cc"):
+    run = strainfiles.analyse(demo, tmp_path / "scattered.npz", fit_degree=degree)
+    assert run.motion.source == "scattered" and run.motion.fit["degree"] == degree
+    for q in ("E_rr", "E_cc", "E_ll", "E_ff", "E_cl", "E_ss", "J", "strain_cc"):
         err = np.nanmax(np.abs(run.study.segments[q] - analysed.study.segments[q]))
         assert err < 0.01, (q, err)
 
@@ -196,7 +199,13 @@ def test_local_fit_reproduces_an_affine_field_exactly():
     out, fit = motion_io.fit_at_nodes(pts, disp, nodes)
     assert np.abs(out[0] - (nodes @ A.T + 1.0)).max() < 1e-9
     assert np.abs(out[1] - 2 * (nodes @ A.T)).max() < 1e-9
-    assert fit["neighbours"] == motion_io.NEIGHBOURS
+    assert fit["neighbours"] == motion_io.NEIGHBOURS[1]
+    # degree 2 reproduces a quadratic field, which the affine fit does not
+    quad = np.stack([disp[0] + 0.01 * (pts[:, :1] - 15.0) ** 2])
+    exact = nodes @ A.T + 1.0 + 0.01 * (nodes[:, :1] - 15.0) ** 2
+    out2, _ = motion_io.fit_at_nodes(pts, quad, nodes, degree=2)
+    out1, _ = motion_io.fit_at_nodes(pts, quad, nodes, degree=1)
+    assert np.abs(out2[0] - exact).max() < 1e-9 < np.abs(out1[0] - exact).max()
 
 
 # ----------------------------------------------------------------------------- the command and its files

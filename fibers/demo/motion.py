@@ -17,14 +17,15 @@ cylindrical basis (e_R, e_Theta, e_z) the deformation gradient is
 
 with ``r'_R = R / (lam r')`` and ``r'_Z = c_Z / (2 r')``. Here
 ``c(Z) = -kappa rho(Z)^2 q(Z)``, ``rho(Z)`` the wave-free endocardial radius, and ``q`` a smooth
-step from 0 at 4 mm above the endocardial apex to 1 over 15 mm: c vanishes where the wall
+step from 0 at 3 mm above the endocardial apex to 1 over 10 mm: c vanishes where the wall
 crosses the axis, so no point of the solid apical cap is torn open, and c is continuously
 differentiable. Each of lam, kappa and phi follows ``s(t) = (1 - cos 2 pi t / T) / 2``: frame 0
 is the reference, the peak of contraction lies halfway through the cycle.
 
-Magnitudes (peak, whole wall, mid-ventricle; chosen to resemble published tagged-MRI values,
-from memory): long-axis stretch 0.86 (E_ll near -0.13), endocardial circumferential stretch about
-0.77 (E_cc -0.2 there, about -0.13 over the wall), E_rr about +0.4, 15 degrees of apical rotation.
+Magnitudes at the peak (chosen to resemble published tagged-MRI values, from memory): long-axis
+stretch 0.85; on the demo build the whole-wall means are E_ll -0.135, E_cc -0.11 (-0.16 in the
+mid segments, about -0.2 at the endocardium), E_rr +0.45, E_cl -0.03, with 15 degrees of apical
+rotation. The solid apical cap (segment 17) has c = 0 and widens a little as it shortens.
 """
 
 from __future__ import annotations
@@ -59,11 +60,11 @@ class IsochoricCycle:
     lv: SyntheticLV
     frames: int = 20
     period_ms: float = 800.0
-    long_stretch: float = 0.86
-    squeeze: float = 0.57
+    long_stretch: float = 0.85
+    squeeze: float = 0.65
     apex_rotation_deg: float = 15.0
-    ramp_mm: float = 15.0
-    tip_mm: float = 4.0
+    ramp_mm: float = 10.0
+    tip_mm: float = 3.0
 
     # -- time -------------------------------------------------------------------------------
     @property

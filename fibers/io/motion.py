@@ -27,7 +27,7 @@ import numpy as np
 from fibers.errors import InputError
 
 KNOWN_KEYS = ("displacement", "points", "time_ms", "mesh_checksum")
-NEIGHBOURS = 20  # scattered points per local fit; an affine map has 4 unknowns per component
+NEIGHBOURS = {1: 20, 2: 40}  # scattered points per local fit: 4 unknowns per component (affine), 10 (quadratic)
 
 
 def mesh_checksum(points: np.ndarray, cells: np.ndarray) -> str:
@@ -158,7 +158,7 @@ class Motion:
     fit: dict
 
 
-def read_motion(path, mesh: BuildMesh, *, neighbours: int = NEIGHBOURS) -> Motion:
+def read_motion(path, mesh: BuildMesh, *, degree: int = 1, neighbours: int | None = None) -> Motion:
     """Read and check MOTION.npz against a build's mesh.
 
     Raises
@@ -169,6 +169,7 @@ def read_motion(path, mesh: BuildMesh, *, neighbours: int = NEIGHBOURS) -> Motio
         made for another mesh (checksum), scattered points that do not cover the mesh.
     """
     path = Path(path)
+    neighbours = neighbours or NEIGHBOURS[degree]
     arrays = _load(path)
     unknown = sorted(set(arrays) - set(KNOWN_KEYS))
     if unknown:
@@ -206,7 +207,7 @@ def read_motion(path, mesh: BuildMesh, *, neighbours: int = NEIGHBOURS) -> Motio
     time_ms = _times(path, arrays.get("time_ms"), len(disp))
     if not scattered:
         return Motion(displacement=disp, time_ms=time_ms, source="nodes", path=path, fit={})
-    node_disp, fit = fit_at_nodes(pts, disp, mesh.points, neighbours=neighbours, path=path)
+    node_disp, fit = fit_at_nodes(pts, disp, mesh.points, degree=degree, neighbours=neighbours, path=path)
     return Motion(displacement=node_disp, time_ms=time_ms, source="scattered", path=path, fit=fit)
 
 
@@ -265,7 +266,8 @@ def _check_checksum(path: Path, arrays: dict, mesh: BuildMesh) -> None:
 # ----------------------------------------------------------------------------- scattered samples
 
 def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray, *,
-                 neighbours: int = NEIGHBOURS, path: Path | str = "motion") -> tuple[np.ndarray, dict]:
+                 degree: int = 1, neighbours: int | None = None,
+                 path: Path | str = "motion") -> tuple[np.ndarray, dict]:
     """Displacements at the mesh nodes from scattered samples by a local affine fit.
 
     At each node x0, an affine map ``u(x) = a + G (x - x0)`` is fitted by weighted least squares
@@ -274,6 +276,9 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
     ``d_max`` 1.5 times the distance to the farthest of them; the node's displacement is ``a``.
     An affine map is reproduced exactly; the error of a smooth field is second order in the
     samples' spacing. One fit serves every frame (the weights depend only on the points).
+    ``degree=2`` fits a quadratic map instead (10 unknowns per component, 40 neighbours by
+    default; Cleveland's local regression of degree 2), exact for quadratic fields: use it when
+    the samples stop at the wall's surfaces, where the affine fit extrapolates a curved field.
 
     Parameters
     ----------
@@ -293,6 +298,9 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
     """
     from scipy.spatial import cKDTree
 
+    if degree not in NEIGHBOURS:
+        raise InputError(f"local fit of degree {degree}: use 1 (affine) or 2 (quadratic)")
+    neighbours = neighbours or NEIGHBOURS[degree]
     tree = cKDTree(points)
     dist, idx = tree.query(nodes, k=neighbours)
     spacing = float(np.median(dist[:, 0]))
@@ -308,9 +316,14 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
     d_max = 1.5 * dist[:, -1:] + 1e-12
     w = (1.0 - (dist / d_max) ** 3) ** 3                                   # (N, k)
     scale = dist[:, -1:, None] + 1e-12                                     # unitless offsets: a well-scaled system
-    A = np.concatenate([np.ones(idx.shape + (1,)), (points[idx] - nodes[:, None]) / scale], axis=2)  # (N, k, 4)
-    AtW = A.transpose(0, 2, 1) * w[:, None, :]                             # (N, 4, k)
-    normal = AtW @ A                                                       # (N, 4, 4)
+    d = (points[idx] - nodes[:, None]) / scale
+    terms = [np.ones(idx.shape + (1,)), d]
+    if degree == 2:
+        i, j = np.triu_indices(3)
+        terms.append(d[..., i] * d[..., j])
+    A = np.concatenate(terms, axis=2)                                      # (N, k, 4) or (N, k, 10)
+    AtW = A.transpose(0, 2, 1) * w[:, None, :]                             # (N, p, k)
+    normal = AtW @ A                                                       # (N, p, p)
     cond = np.linalg.cond(normal)
     degenerate = ~np.isfinite(cond) | (cond > 1e10)
     if degenerate.any():
@@ -318,14 +331,14 @@ def fit_at_nodes(points: np.ndarray, displacement: np.ndarray, nodes: np.ndarray
         raise InputError(f"{path}: near {int(degenerate.sum())} mesh nodes (e.g. node {k}) the scattered points lie on "
                          "a plane or a line, so the local affine fit is not determined; give samples through the wall")
     # the row of (A^T W A)^-1 A^T W that yields the constant term a, i.e. u at the node
-    e0 = np.zeros((len(nodes), 4, 1))
+    e0 = np.zeros((len(nodes), A.shape[2], 1))
     e0[:, 0] = 1.0
-    row0 = np.linalg.solve(normal.transpose(0, 2, 1), e0)[:, :, 0]         # (N, 4): first row of the inverse
+    row0 = np.linalg.solve(normal.transpose(0, 2, 1), e0)[:, :, 0]         # (N, p): first row of the inverse
     weights = np.einsum("na,nak->nk", row0, AtW)                           # (N, k), sum to 1
     out = np.stack([np.einsum("nk,nkc->nc", weights, u[idx]) for u in displacement])  # frame by frame: less memory
-    fit = {"method": "weighted least squares of an affine map per node over its nearest scattered points "
-                     "(tricube weights, Cleveland 1979)",
-           "neighbours": neighbours, "median_nearest_mm": round(spacing, 4), "sample_spacing_mm": round(own, 4),
+    fit = {"method": f"weighted least squares of {'an affine' if degree == 1 else 'a quadratic'} map per node over "
+                     "its nearest scattered points (tricube weights, Cleveland 1979)",
+           "degree": degree, "neighbours": neighbours, "median_nearest_mm": round(spacing, 4), "sample_spacing_mm": round(own, 4),
            "median_reach_mm": round(float(np.median(dist[:, -1])), 4), "points": int(len(points))}
     return out, fit
 

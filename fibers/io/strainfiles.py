@@ -45,12 +45,15 @@ class StrainRun:
     warnings: list
 
 
-def analyse(build_dir, motion_path) -> StrainRun:
-    """Read the build and the motion, and compute every cell, node and segment value."""
+def analyse(build_dir, motion_path, *, fit_degree: int = 1) -> StrainRun:
+    """Read the build and the motion, and compute every cell, node and segment value.
+
+    ``fit_degree`` is the degree of the local fit of scattered samples (1 affine, 2 quadratic).
+    """
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         mesh = motion_io.read_build_mesh(build_dir)
-        motion = motion_io.read_motion(motion_path, mesh)
+        motion = motion_io.read_motion(motion_path, mesh, degree=fit_degree)
         frames = strain.cell_frames(mesh.tets, mesh.point_fields, mesh.cell_fields)
         result = strain.study(mesh.points, mesh.cells, motion.displacement, frames, mesh.labels)
         _warn_inverted(result, mesh)
@@ -205,7 +208,7 @@ def manifest(run: StrainRun, build_dir: Path, motion_path: Path, timings: dict) 
     }
 
 
-def write_strain_folder(build_dir, motion_path, out, *, report: bool = True) -> dict:
+def write_strain_folder(build_dir, motion_path, out, *, report: bool = True, fit_degree: int = 1) -> dict:
     """Analyse a motion on a build and write the whole strain folder atomically. Returns the summary."""
     from fibers.pipeline import _check_out, _replace
 
@@ -213,7 +216,7 @@ def write_strain_folder(build_dir, motion_path, out, *, report: bool = True) -> 
     _check_out(out)
     timings = {}
     t0 = time.perf_counter()
-    run = analyse(build_dir, motion_path)
+    run = analyse(build_dir, motion_path, fit_degree=fit_degree)
     timings["analyse"] = round(time.perf_counter() - t0, 4)
     for message in run.warnings:
         log.warning("%s", message)
