@@ -135,13 +135,32 @@ def kinematics(F: np.ndarray, frames: dict, *, quantities=QUANTITIES) -> dict[st
 
 
 def _in_triads(E: np.ndarray, frames: dict) -> dict:
-    """E written in the (r, c, l) and (f, s, n) triads present in ``frames``: Q E Q^T, rows of Q the directions."""
+    """E written in the (r, c, l) and (f, s, n) triads present in ``frames``: ``Q E Q^T``, rows of Q the directions.
+
+    By explicit sums over the three components: for millions of 3 x 3 products this is several
+    times faster than numpy's batched matmul or einsum.
+    """
     out = {}
     for key, names in (("rcl", ("e_rad", "e_circ", "e_long")), ("fsn", ("fiber", "sheet", "sheet_normal"))):
         if all(frames.get(n) is not None for n in names):
-            Q = np.stack([np.asarray(frames[n], float) for n in names], axis=-2)    # (n, 3, 3)
-            out[key] = Q @ E @ np.swapaxes(Q, -1, -2)
+            Q = [np.asarray(frames[n], float) for n in names]
+            Eq = [_matvec(E, q) for q in Q]                           # E q_b
+            local = np.empty(E.shape)
+            for a in range(3):
+                for b in range(a, 3):
+                    local[..., a, b] = local[..., b, a] = _dot(Q[a], Eq[b])
+            out[key] = local
     return out
+
+
+def _matvec(A: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """A v for A (..., n, 3, 3) and v (n, 3): (..., n, 3)."""
+    return A[..., 0] * v[:, :1] + A[..., 1] * v[:, 1:2] + A[..., 2] * v[:, 2:3]
+
+
+def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise dot of (n, 3) with (..., n, 3): (..., n)."""
+    return a[:, 0] * b[..., 0] + a[:, 1] * b[..., 1] + a[:, 2] * b[..., 2]
 
 
 def _stretch(e_aa: np.ndarray) -> np.ndarray:

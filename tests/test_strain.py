@@ -378,3 +378,23 @@ def test_inverted_elements_are_counted_located_and_the_rest_built(demo, analysed
     assert summary["inverted"] and summary["inverted"][0]["frame"] == 2 and summary["inverted"][0]["cells"] >= 1
     rows = list(csv.DictReader((out / "segments.csv").open()))
     assert all(r["E_cc"] != "" for r in rows)                # every segment still has a value
+
+
+def test_a_build_without_labels_reports_the_whole_wall(demo, tmp_path, capsys):
+    # no landmarks, no AHA labels: segment 0 only, with a warning; a motion without time_ms
+    import meshio
+    import shutil
+
+    copy = tmp_path / "unlabelled"
+    shutil.copytree(demo, copy)
+    mesh = meshio.read(copy / "mesh.vtu")
+    mesh.cell_data["aha_segment"] = [np.zeros_like(mesh.cell_data["aha_segment"][0])]
+    mesh.write(copy / "mesh.vtu")
+    with np.load(demo / "motion.npz") as data:
+        motion_io.write_motion(tmp_path / "m.npz", data["displacement"][:4])
+    out = tmp_path / "out"
+    assert cli.main(["strain", str(copy), str(tmp_path / "m.npz"), "--out", str(out)]) == 0
+    assert "no AHA segment labels" in capsys.readouterr().err
+    rows = list(csv.DictReader((out / "segments.csv").open()))
+    assert [r["segment"] for r in rows] == ["0"] * 4 and rows[0]["time_ms"] == ""
+    assert json.loads((out / "summary.json").read_text())["time_ms"] == [None] * 4

@@ -138,11 +138,13 @@ class IsochoricCycle:
         dr_dR = R / (lam * r)
         dr_dZ = st["dc"] / (2.0 * r)
         column_z = dr_dZ[:, None] * e_r + (r * st["dphi"])[:, None] * e_t + lam * e_z
-        F = (dr_dR[:, None, None] * np.einsum("ni,nj->nij", e_r, e_R)
-             + (r / R)[:, None, None] * np.einsum("ni,nj->nij", e_t, e_T)
-             + np.einsum("ni,nj->nij", column_z, e_z))
+        F = (dr_dR[:, None, None] * e_r[:, :, None] * e_R[:, None, :]
+             + (r / R)[:, None, None] * e_t[:, :, None] * e_T[:, None, :]
+             + column_z[:, :, None] * e_z[:, None, :])
         Q = np.asarray(self.lv.rotation)
-        return np.einsum("ik,nkl,jl->nij", Q, F, Q)     # local to world: Q F Q^T
+        # local to world, Q F Q^T, as two small matrix products over the stacked rows (BLAS)
+        FQt = (F.reshape(-1, 3) @ Q.T).reshape(F.shape)
+        return np.swapaxes((np.swapaxes(FQt, 1, 2).reshape(-1, 3) @ Q.T).reshape(F.shape), 1, 2)
 
     def describe(self) -> dict:
         return {"design": "isochoric closed-form cycle (fibers.demo.motion.IsochoricCycle)",

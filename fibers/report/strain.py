@@ -12,6 +12,7 @@ from __future__ import annotations
 import html
 import shutil
 import uuid
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -129,6 +130,7 @@ def fig_segments(run, times, path: Path) -> None:
             ax.grid(alpha=0.3)
             if row == 0:
                 ax.set_title(ring)
+            if row == 0 and ax.get_lines()[:-1]:
                 ax.legend(fontsize=7, ncol=2, loc="best", title="segment", title_fontsize=7)
             if col == 0:
                 ax.set_ylabel(f"{q} (%)")
@@ -144,9 +146,18 @@ def fig_bullseyes(run, path: Path) -> None:
     import matplotlib as mpl
 
     seg = run.study.segments
-    panels = [(q, np.nanmin(seg[q], axis=0) if q != "strain_rr" else np.nanmax(seg[q], axis=0),
-               "peak " + LABELS[q] + " (%)", 100.0) for q in CURVES]
-    panels.append(("abs_J", np.nanmean(run.study.abs_J_minus_1, axis=0), "mean |J - 1| (%)", 100.0))
+    if not (run.study.volume_ml[1:] > 0).any():
+        fig, ax = plt.subplots(figsize=(10, 3))
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, "No segment labels in the build (no right-ventricular landmarks):\n"
+                "only the whole wall is reported.", ha="center", va="center", fontsize=13)
+        save_figure(fig, path)
+        return
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)    # all-NaN columns of empty segments
+        panels = [(q, np.nanmin(seg[q], axis=0) if q != "strain_rr" else np.nanmax(seg[q], axis=0),
+                   "peak " + LABELS[q] + " (%)", 100.0) for q in CURVES]
+        panels.append(("abs_J", np.nanmean(run.study.abs_J_minus_1, axis=0), "mean |J - 1| (%)", 100.0))
     fig, axes = plt.subplots(1, 5, figsize=(22, 5.2))
     for ax, (q, values, title, scale) in zip(axes, panels):
         v = np.where(run.study.volume_ml > 0, values * scale, np.nan)
