@@ -4,18 +4,19 @@ The motion is of our own design, written in the local frame of a :class:`Synthet
 the long axis from apex to base, cylindrical radius R and angle Theta about it). A material
 point (R, Theta, Z) moves to
 
-    z' = z0 + lam (Z - z0)                      long-axis shortening toward the fixed apex z0
-    r'^2 = R^2 / lam + c(Theta?, Z)             here c = c(Z): the cavity closes, the wall thickens
+    z' = z0 + int_z0^Z lam(zeta) dzeta         long-axis shortening toward the fixed apex z0
+    r'^2 = R^2 / lam(Z) + c(Z)                  the cavity closes, the wall thickens
     theta' = Theta + phi(Z)                     torsion, growing linearly from the base to the apex
 
-With ``theta'`` depending on Z alone and ``z'`` on Z alone, the Jacobian matrix in cylindrical
-coordinates is upper triangular and ``J = (r'/R) (dr'/dR) lam = (r'/R) (R / (lam r')) lam = 1``
-for every c and phi: the motion is isochoric exactly (not just to first order). In the local
-cylindrical basis (e_R, e_Theta, e_z) the deformation gradient is
+With ``theta'`` and ``z'`` depending on Z alone, the Jacobian matrix in cylindrical coordinates
+is upper triangular and ``J = (r'/R) (dr'/dR) lam = (r'/R) (R / (lam r')) lam = 1`` for every
+lam(Z), c and phi: the motion is isochoric exactly (not just to first order). lam(Z) is 1 at the
+apex and reaches its peak value 20 mm above it (a smooth step), so the apex barely moves. In the
+local cylindrical basis (e_R, e_Theta, e_z) the deformation gradient is
 
     F = r'_R e_r' (x) e_R + (r'/R) e_theta' (x) e_Theta + (r'_Z e_r' + r' phi_Z e_theta' + lam e_z) (x) e_z
 
-with ``r'_R = R / (lam r')`` and ``r'_Z = c_Z / (2 r')``. Here
+with ``r'_R = R / (lam r')`` and ``r'_Z = (c_Z - R^2 lam_Z / lam^2) / (2 r')``. Here
 ``c(Z) = -kappa rho(Z)^2 q(Z)``, ``rho(Z)`` the wave-free endocardial radius, and ``q`` a smooth
 step from 0 at 3 mm above the endocardial apex to 1 over 10 mm: c vanishes where the wall
 crosses the axis, so no point of the solid apical cap is torn open, and c is continuously
@@ -23,9 +24,9 @@ differentiable. Each of lam, kappa and phi follows ``s(t) = (1 - cos 2 pi t / T)
 is the reference, the peak of contraction lies halfway through the cycle.
 
 Magnitudes at the peak (chosen to resemble published tagged-MRI values, from memory): long-axis
-stretch 0.85; on the demo build the whole-wall means are E_ll -0.135, E_cc -0.11 (-0.16 in the
+stretch 0.85; on the demo build the whole-wall means are E_ll -0.13, E_cc -0.12 (-0.16 in the
 mid segments, about -0.2 at the endocardium), E_rr +0.45, E_cl -0.03, with 15 degrees of apical
-rotation. The solid apical cap (segment 17) has c = 0 and widens a little as it shortens.
+rotation; the apical cap (segment 17) stays nearly unstrained.
 """
 
 from __future__ import annotations
@@ -49,7 +50,7 @@ class IsochoricCycle:
         Frames per cycle; frame 0 is the reference (no displacement).
     period_ms : float
     long_stretch : float
-        Long-axis stretch lam at the peak.
+        Long-axis stretch lam at the peak, away from the apex.
     squeeze : float
         kappa at the peak (dimensionless; the endocardial circumferential stretch at mid height is
         ``sqrt(1 / lam - kappa)``).
@@ -65,6 +66,7 @@ class IsochoricCycle:
     apex_rotation_deg: float = 15.0
     ramp_mm: float = 10.0
     tip_mm: float = 3.0
+    apex_mm: float = 20.0
 
     # -- time -------------------------------------------------------------------------------
     @property
@@ -95,15 +97,31 @@ class IsochoricCycle:
         dq = np.where((s > 0) & (s < 1), 6.0 * s * (1.0 - s) / self.ramp_mm, 0.0)
         return -kappa * rho2 * q, -kappa * (drho2 * q + rho2 * dq)
 
+    def _long(self, z: np.ndarray, amount: float):
+        """lam(Z) = 1 - amount g(Z), dlam/dZ, and z'(Z) = z0 + int_z0^Z lam.
+
+        g rises smoothly from 0 at the fixed apex to 1 over ``apex_mm``: the apex itself does not
+        shorten, so the solid cap (where c = 0 and r' = R / sqrt(lam)) does not bulge.
+        """
+        w = self.apex_mm
+        u = np.clip((z - self.fixed_z) / w, 0.0, 1.0)
+        g = u * u * (3.0 - 2.0 * u)
+        dg = np.where((u > 0) & (u < 1), 6.0 * u * (1.0 - u) / w, 0.0)
+        # int_z0^Z g = w (u^3 - u^4 / 2) inside the ramp, w / 2 + (Z - z0 - w) beyond it
+        G = np.where(z - self.fixed_z > w, 0.5 * w + (z - self.fixed_z - w), w * (u ** 3 - 0.5 * u ** 4))
+        return 1.0 - amount * g, -amount * dg, self.fixed_z + (z - self.fixed_z) - amount * G
+
     def _state(self, local: np.ndarray, frame: int):
         s = self.activation()[frame]
-        lam = 1.0 - (1.0 - self.long_stretch) * s
         kappa = self.squeeze * s
         twist = np.radians(self.apex_rotation_deg) * s
         X, Y, Z = local[:, 0], local[:, 1], local[:, 2]
+        lam, dlam, z_new = self._long(Z, (1.0 - self.long_stretch) * s)
         R = np.hypot(X, Y)
         Theta = np.arctan2(Y, X)
         c, dc = self._c(Z, kappa)
+        # r'^2 = R^2 / lam(Z) + c(Z): d(r'^2)/dZ = -R^2 lam' / lam^2 + c'
+        dc = dc - R * R * dlam / (lam * lam)
         r2 = R * R / lam + c
         if np.any(r2 < 0.25 * R * R / lam):
             raise ValueError("the synthetic motion is not defined for points this close to the axis inside the cavity")
@@ -111,13 +129,13 @@ class IsochoricCycle:
         span = self.lv.base_z - self.fixed_z
         phi = twist * (self.lv.base_z - Z) / span
         dphi = -twist / span
-        return dict(lam=lam, R=R, Theta=Theta, Z=Z, r=r, dc=dc, phi=phi, dphi=dphi)
+        return dict(lam=lam, R=R, Theta=Theta, Z=Z, z_new=z_new, r=r, dc=dc, phi=phi, dphi=dphi)
 
     def positions(self, points: np.ndarray, frame: int) -> np.ndarray:
         """Deformed world positions (N, 3) mm of reference world points at a frame."""
         st = self._state(self.lv.to_local(points), frame)
         theta = st["Theta"] + st["phi"]
-        z = self.fixed_z + st["lam"] * (st["Z"] - self.fixed_z)
+        z = st["z_new"]
         return self.lv.to_world(np.column_stack([st["r"] * np.cos(theta), st["r"] * np.sin(theta), z]))
 
     def displacement(self, points: np.ndarray) -> np.ndarray:
@@ -137,7 +155,7 @@ class IsochoricCycle:
         e_z = np.broadcast_to([0.0, 0.0, 1.0], e_R.shape)
         dr_dR = R / (lam * r)
         dr_dZ = st["dc"] / (2.0 * r)
-        column_z = dr_dZ[:, None] * e_r + (r * st["dphi"])[:, None] * e_t + lam * e_z
+        column_z = dr_dZ[:, None] * e_r + (r * st["dphi"])[:, None] * e_t + lam[:, None] * e_z
         F = (dr_dR[:, None, None] * e_r[:, :, None] * e_R[:, None, :]
              + (r / R)[:, None, None] * e_t[:, :, None] * e_T[:, None, :]
              + column_z[:, :, None] * e_z[:, None, :])
@@ -151,7 +169,7 @@ class IsochoricCycle:
                 "frames": self.frames, "period_ms": self.period_ms, "long_stretch_peak": self.long_stretch,
                 "squeeze_peak": self.squeeze, "apex_rotation_deg_peak": self.apex_rotation_deg,
                 "peak_frame": self.peak_frame,
-                "map": "z' = z0 + lam (Z - z0); r'^2 = R^2 / lam + c(Z); theta' = Theta + phi(Z); J = 1 exactly"}
+                "map": "z' = z0 + int lam(Z) dZ; r'^2 = R^2 / lam(Z) + c(Z); theta' = Theta + phi(Z); J = 1 exactly"}
 
 
 def closed_form_segments(cycle: IsochoricCycle, points: np.ndarray, tets: np.ndarray, frames: dict,
