@@ -40,6 +40,16 @@ def _parser() -> argparse.ArgumentParser:
     d = sub.add_parser("demo", help="write the synthetic case of our own and build it")
     build_options(d)
     d.add_argument("--labelmap", action="store_true", help="give the synthetic subject as a label map (NIfTI)")
+    d.add_argument("--motion", action="store_true",
+                   help="also write motion.npz, a closed-form isochoric cycle, and its truth (motion_truth.json)")
+    k = sub.add_parser("strain", help="strain and fiber stretch of a displacement field on a finished build")
+    k.add_argument("folder", type=Path, help="the --out folder of a finished build (the reference geometry)")
+    k.add_argument("motion", type=Path, help="MOTION.npz: displacement (frames, nodes, 3) mm, or points + displacement")
+    k.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
+    k.add_argument("--no-report", action="store_true", help="skip the report")
+    k.add_argument("--fit-degree", type=int, choices=(1, 2), default=1,
+                   help="local fit of scattered samples: 1 affine (default), 2 quadratic")
+    k.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
     r.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
@@ -103,6 +113,12 @@ def _dispatch(args) -> int:
         return 0
     if args.command == "demo":
         return _demo(args)
+    if args.command == "strain":
+        from fibers.io.strainfiles import write_strain_folder
+
+        write_strain_folder(args.folder, args.motion, args.out, report=not args.no_report,
+                            fit_degree=args.fit_degree)
+        return 0
     if args.command == "report":
         from fibers import report
 
@@ -166,6 +182,12 @@ def _demo(args) -> int:
                  lv.volumes_ml()["cavity_ml"], lv.volumes_ml()["myocardium_ml"])
         case = _override(case_io.read_case(tmp / "case.toml"), args)
         pipeline.build(case, args.out, report=not args.no_report, include=include)
+    if args.motion:
+        from fibers.demo.motion import write_demo_motion
+
+        truth = write_demo_motion(args.out, lv)
+        log.info("demo: motion.npz, %d frames of an isochoric cycle; closed-form segment strains in "
+                 "motion_truth.json", truth["motion"]["frames"])
     return 0
 
 

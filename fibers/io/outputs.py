@@ -295,6 +295,8 @@ def manifest(result, case, inputs: list) -> dict:
         "long_axis": {"base_centre_mm": pt(result.mesh.axis.base_centre),
                       "direction": pt(result.mesh.axis.direction),
                       "endo_apex_mm": pt(result.mesh.endo_apex), "epi_apex_mm": pt(result.mesh.epi_apex)},
+        # ties a later motion file (fibers strain) to this very mesh
+        "mesh_checksum": _mesh_checksum(result.mesh),
         "background_box": {"corner_mm": pt(result.box.corner), "edges_mm": [pt(e) for e in result.box.edges]},
         "conventions": CONVENTIONS,
         "versions": {"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
@@ -302,6 +304,12 @@ def manifest(result, case, inputs: list) -> dict:
         "warnings": list(result.warnings),
         "summary": result.summary,
     }
+
+
+def _mesh_checksum(wall) -> str:
+    from fibers.io.motion import mesh_checksum
+
+    return mesh_checksum(wall.points, wall.tets)
 
 
 def write_manifest(folder: Path, manifest: dict) -> None:
