@@ -304,7 +304,9 @@ def _remove_islands(cavity: np.ndarray, wall: np.ndarray, rv: np.ndarray | None,
     if n <= 1:
         return cavity, wall
     sizes = np.bincount(comp.ravel())[1:]
-    keep = (comp == (int(np.argmax(sizes)) + 1)) & body
+    # islands are small; a large second body (a stack split by missing slices) is kept, to be
+    # refused with its gap named
+    keep = np.isin(comp, np.flatnonzero(sizes >= ISLAND_FRACTION * sizes.max()) + 1) & body
     dropped = body & ~keep
     stray = np.zeros_like(dropped)
     if rv is not None:
@@ -350,19 +352,7 @@ def _clean_slice(cav: np.ndarray, wall: np.ndarray, rv: np.ndarray | None, k: in
     epi = ndimage.binary_fill_holes(body, structure=_CROSS)
     repairs.add("holes", k, int((epi & ~body & ~_filled(cav)).sum()))
     if cav.any():
-        radius = max(1, int(round(PAPILLARY_MM / 2 / pixel_mm)))
-        disk = _disk(radius)
-        closed = ndimage.binary_closing(np.pad(cav, radius + 1), disk)[radius + 1:-radius - 1,
-                                                                      radius + 1:-radius - 1]
-        grown = _filled(cav | (closed & epi & ~cav))
-        grown = grown & epi
-        grown = _largest(grown)
-        added = grown & ~cav
-        if _noisy(grown):
-            voted = _majority(grown) & epi
-            grown = _largest(voted) if voted.any() else grown
-        repairs.add("papillary", k, int((added & body).sum()) if added.sum() >= MIN_REPAIR_VOXELS else 0)
-        cav = grown if added.sum() >= MIN_REPAIR_VOXELS else _largest(_filled(cav) & epi)
+        cav = _take_papillary(cav, epi, body, pixel_mm, k, repairs)
     coverage = None
     if cav.any():
         rim = ndimage.binary_dilation(cav, _CROSS) & ~cav
@@ -371,6 +361,23 @@ def _clean_slice(cav: np.ndarray, wall: np.ndarray, rv: np.ndarray | None, k: in
             "rim_open": None if coverage is None else (ndimage.binary_dilation(cav, _CROSS) & ~cav & ~epi)}
 
 
+def _take_papillary(cav: np.ndarray, epi: np.ndarray, body: np.ndarray, pixel_mm: float,
+                    k: int, repairs: _Repairs) -> np.ndarray:
+    """The cavity with the papillary muscles in it: wall enclosed by cavity (free muscles) and
+    wall bays a closing with a disk of diameter ``PAPILLARY_MM`` fills (attached ones)."""
+    free = _filled(cav) & epi
+    radius = max(1, int(round(PAPILLARY_MM / 2 / pixel_mm)))
+    pad = radius + 1
+    closed = ndimage.binary_closing(np.pad(free, pad), _disk(radius))[pad:-pad, pad:-pad]
+    attached = _largest(_filled(free | (closed & epi))) & epi
+    if (attached & ~free).sum() < MIN_REPAIR_VOXELS:
+        attached = free            # the staircase of the grid, not a muscle
+    repairs.add("papillary", k, int((attached & ~cav & body).sum()))
+    return _largest(attached)
+
+
+#: A connected body smaller than this share of the largest is an island, not the heart.
+ISLAND_FRACTION = 0.1
 #: Papillary muscles narrower than this (mm) are taken into the cavity by a closing.
 PAPILLARY_MM = 8.0
 #: Fewer changed voxels than this in a slice are the staircase of the grid, not a repair.
