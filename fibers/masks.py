@@ -334,8 +334,18 @@ def _clean_slice(cav: np.ndarray, wall: np.ndarray, rv: np.ndarray | None, k: in
     if cav.any() and not wall.any():
         raise InputError(f"{source}: slice {k} shows cavity but no wall label; label the wall "
                          "or remove the slice's cavity")
-    body = _largest(cav | wall)
-    repairs.add("islands", k, int(((cav | wall) & ~body).sum()))
+    body = cav | wall
+    if _noisy(body):
+        # first: noise leaves specks an island count would take for islands
+        voted = _majority(body)
+        repairs.add("noise", k, int((voted != body).sum()))
+        if voted.any():
+            wall = (wall | (voted & ~cav)) & voted
+            cav = cav & voted
+            body = cav | wall
+    kept = _largest(body)
+    repairs.add("islands", k, int((body & ~kept).sum()))
+    body = kept
     cav, wall = cav & body, wall & body
     if cav.any():
         main = _largest(cav)
@@ -344,11 +354,6 @@ def _clean_slice(cav: np.ndarray, wall: np.ndarray, rv: np.ndarray | None, k: in
         repairs.add("stray", k, int(stray.sum()))
         cav = cav & ~stray
         body = body & ~stray
-    if _noisy(body):
-        voted = _majority(body)
-        repairs.add("noise", k, int((voted != body).sum()))
-        body = _largest(voted) if voted.any() else body
-        cav = cav & body
     epi = ndimage.binary_fill_holes(body, structure=_CROSS)
     repairs.add("holes", k, int((epi & ~body & ~_filled(cav)).sum()))
     if cav.any():
@@ -663,10 +668,10 @@ def orientation_warnings(found: Extraction, landmarks: Landmarks, source: str) -
     """
     out = []
     apex = np.asarray(found.apex_direction, float)
-    wrong = [name for name, comp in (("left", -apex[0]), ("anterior", apex[1]),
-                                     ("inferior", -apex[2])) if comp < -0.1]
+    wrong = [name for name, comp in (("to the patient's left", -apex[0]), ("anteriorly", apex[1]),
+                                     ("inferiorly", -apex[2])) if comp < -0.1]
     if wrong:
-        out.append(f"{source}: the apex does not point to the patient's {' and '.join(wrong)} "
+        out.append(f"{source}: the apex does not point {' or '.join(wrong)} "
                    f"(apex direction {np.round(apex, 2).tolist()} in the right-anterior-superior "
                    "world frame); normal anatomy has it left, anterior and inferior: check the "
                    "image's orientation (a flipped axis mirrors the segment labels)")
