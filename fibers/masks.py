@@ -1,4 +1,4 @@
-"""Contours and landmarks from a segmentation label volume (issue #6).
+"""Contours and landmarks from a segmentation label volume.
 
 A label map gives, per voxel, background, the left-ventricular cavity, the left-ventricular wall
 and optionally the right ventricle. This stage turns it into the same plain data the contours
@@ -11,16 +11,24 @@ Choices made here
 - **Slice axis.** The short-axis slices are stacked along the image axis with the largest voxel
   spacing, when it is larger than the other two by more than 1 %; for (near-)isotropic voxels
   the third image axis is taken, as scanners store a stack.
-- **Contours.** Per slice, the cavity contour is the boundary of the cavity label and the
-  epicardial contour the outer boundary of cavity + wall. Each mask is reduced to its largest
-  connected component with its holes filled (papillary muscles labelled as wall inside the
-  cavity count as cavity), smoothed lightly (Gaussian, sigma 0.4 voxel: it takes the corners
-  off the staircase without shrinking convex outlines measurably) and outlined by marching
-  squares (``skimage.measure.find_contours``) at level 0.5, which puts the line on the voxel
-  edges with sub-voxel precision. The longest closed line is kept and mapped to world mm through
-  the affine; the contour lies in the plane of the slice's voxel centres. Slices at an end of
-  the stack whose cavity touches the background (a basal slice through the valve plane) are
-  dropped with a warning, with any wall fragments beyond them.
+- **Clean-up.** Before outlining, the map is cleaned as automatic segmentations need, with one
+  warning line per kind of repair naming its slices: small 3-D bodies of cavity or wall label
+  away from the heart are removed (islands; cavity pieces touching the RV label are stray RV
+  voxels); per slice, single-voxel boundary noise is voted away (3 x 3 majority, only where the
+  outline is noisy), in-slice islands dropped, cavity outside the wall's ring taken out, holes
+  in the wall filled, and wall inside the cavity (papillary muscles, free or attached up to
+  ``PAPILLARY_MM`` wide, by a closing) counted as cavity (common practice in CMR volumetry).
+- **The 50 % rule.** A slice counts when at least half of its cavity's rim (the 4-neighbour
+  ring around the cavity) is wall; from the base, slices before the first counted one are
+  dropped (valve plane, atrium). A counted slice with an open arc (the outflow tract) has both
+  outlines bridged across the arc by the shape of the next slice toward the apex, scaled to
+  meet the wall at both ends. Every slice gets a row (``Extraction.slices``). One empty slice
+  between labelled ones is bridged by the surface fit; two in a row are refused.
+- **Contours.** Each cleaned mask is smoothed lightly (Gaussian, sigma 0.4 voxel: it takes the
+  corners off the staircase without shrinking convex outlines measurably) and outlined by
+  marching squares (``skimage.measure.find_contours``) at level 0.5, which puts the line on the
+  voxel edges with sub-voxel precision. The longest closed line is kept and mapped to world mm
+  through the affine; the contour lies in the plane of the slice's voxel centres.
 - **Long-axis check.** The long axis is estimated as the principal axis of the cavity + wall
   voxels (in mm); when that axis is well defined (largest second moment at least 1.3 times the
   next) and more than ``MAX_AXIS_ANGLE_DEG`` from the slice normal, the image is not a short-axis
@@ -34,6 +42,8 @@ Choices made here
   the apex, the usual anatomy, as in ``fibers.demo.ventricle.SyntheticLV.septum_angles``. The per-slice ends are
   combined by their circular median and placed on the epicardial contour of the most basal slice
   with RV contact.
+- **Orientation.** ``orientation_warnings`` checks the heart against normal anatomy in NIfTI's
+  right-anterior-superior world frame.
 """
 
 from __future__ import annotations

@@ -30,7 +30,7 @@ from fibers.types import LongAxis, RawContours, SliceContours, Stack
 log = logging.getLogger(__name__)
 
 MIN_POINTS = 6               # fewer points cannot describe a closed contour
-MAX_TILT_DEG = 10.0          # "parallel within a few degrees" (DESIGN 3.1), with room for noise
+MAX_TILT_DEG = 10.0          # "parallel within a few degrees", with room for noise
 MAX_OUT_OF_PLANE_MM = 2.0    # RMS distance of a slice's points from its plane
 MIN_SLICE_GAP_MM = 1.0       # closer than this, two slices are the same plane
 MIN_ENDO_SLICES = 2
