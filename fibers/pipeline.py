@@ -268,8 +268,9 @@ def _record_resolved(manifest: dict, case, facts: dict) -> None:
     import copy
 
     params = manifest["parameters"] = copy.deepcopy(manifest["parameters"])
-    if "frame" in facts:
+    if "frame" in facts:   # the frame used, in its table and at the top for a quick look
         params.setdefault("input", {})["frame"] = facts["frame"]
+        params["frame"] = facts["frame"]
     geometry = params.setdefault("geometry", {})
     geometry["base"] = base_choice(case)
     geometry["slice_thickness"] = manifest["summary"]["base"]["slice_thickness_mm"]

@@ -180,7 +180,7 @@ def test_build_of_a_4d_map_records_the_frame(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "1 of 3: end-diastole (largest cavity" in err
     manifest = json.loads((out / "manifest.json").read_text())
-    assert manifest["parameters"]["input"]["frame"] == 1
+    assert manifest["parameters"]["input"]["frame"] == 1 and manifest["parameters"]["frame"] == 1
     assert manifest["parameters"]["geometry"]["base"] == "slab"
     assert len(manifest["summary"]["frame_cavity_volumes_ml"]) == 3
     assert {"id", "wall_coverage", "counted", "reason"} <= set(manifest["summary"]["slices"][0])

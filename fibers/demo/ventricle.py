@@ -3,7 +3,8 @@
 Two modes share one generator:
 
 - the demo subject: an end-diastolic ventricle of realistic size whose wall thickness varies
-  around and along the axis, with contour noise, breath-hold shifts and an oblique frame;
+  around and along the axis, with contour noise and breath-hold shifts, placed as a heart sits
+  in the chest (``anatomical_frame``);
 - the exact mode: coaxial spheroids cut by a base plane, whose volumes have a closed form
   (elementary calculus: the volume of a spheroid cap), for the tests.
 
