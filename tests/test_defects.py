@@ -357,3 +357,15 @@ def test_case_keys_of_this_issue():
     with pytest.raises(InputError, match="must be one of 'slab', 'slice'"):
         resolve_case({"input": {"labelmap": "seg.nii.gz"}, "geometry": {"base": "plane"}})
     assert set(ALL_DEFECTS) >= set(REPAIR_WARNING)
+
+
+def test_non_integer_storage_and_truncated_gzip_are_refused(tmp_path):
+    labels, affine = voxelise(spheroid_shell(), rv=False)
+    nib.save(nib.Nifti1Image(labels.astype(np.complex64), affine), tmp_path / "c.nii")
+    with pytest.raises(InputError, match="stores complex64 voxels"):
+        load_labelmap(tmp_path / "c.nii")
+    write_labelmap(tmp_path / "ok.nii.gz", labels, affine)
+    data = (tmp_path / "ok.nii.gz").read_bytes()
+    (tmp_path / "cut.nii.gz").write_bytes(data[: len(data) // 2])
+    with pytest.raises(InputError, match="cannot read the voxels of label map cut.nii.gz"):
+        load_labelmap(tmp_path / "cut.nii.gz")

@@ -123,7 +123,8 @@ def load_labelmap(path, *, frame: int | str | None = None, cavity: int = 1) -> L
         affine = np.array(img.affine, dtype=float)
         unit = img.header.get_xyzt_units()[0]
         offset = int(img.dataobj.offset)
-        itemsize = np.dtype(img.get_data_dtype()).itemsize
+        dtype = np.dtype(img.get_data_dtype())
+        itemsize = dtype.itemsize
     except InputError:
         raise
     except (nib.filebasedimages.ImageFileError, OSError, EOFError, ValueError, zlib.error,
@@ -134,6 +135,9 @@ def load_labelmap(path, *, frame: int | str | None = None, cavity: int = 1) -> L
         raise InputError(f"cannot read label map {name} ({reason}); "
                          "check that it is a complete NIfTI-1/NIfTI-2 file") from None
 
+    if dtype.kind not in "biuf":
+        raise InputError(f"label map {name} stores {dtype} voxels (not integer labels); save the "
+                         "segmentation with an integer data type")
     spatial, n_frames = _check_shape(shape, name)
     n_voxels = int(np.prod(spatial, dtype=object))
     if n_voxels > MAX_FRAME_VOXELS:
@@ -151,7 +155,7 @@ def load_labelmap(path, *, frame: int | str | None = None, cavity: int = 1) -> L
     index = _frame_index(shape)
     try:
         scans = [_scan_frame(img.dataobj, index(t), spatial, cavity) for t in range(n_frames)]
-    except (OSError, EOFError, ValueError, zlib.error) as exc:
+    except (OSError, EOFError, ValueError, TypeError, zlib.error) as exc:
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise InputError(f"cannot read the voxels of label map {name} ({reason[:120]}); "
                          "check that the file is complete") from None
