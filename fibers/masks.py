@@ -191,9 +191,7 @@ def extract(labels: np.ndarray, affine: np.ndarray, values: LabelValues = LabelV
 
     ks = _labelled_range(cavity_all | wall_all, source)
     pixel_mm = float(np.sqrt(np.linalg.norm(cols[:, 0]) * np.linalg.norm(cols[:, 1])))
-    masks = {k: _clean_slice(cavity_all[:, :, k], wall_all[:, :, k],
-                             None if rv_all is None else rv_all[:, :, k], k, pixel_mm, repairs,
-                             source)
+    masks = {k: _clean_slice(cavity_all[:, :, k], wall_all[:, :, k], k, pixel_mm, repairs, source)
              for k in ks if (cavity_all[:, :, k] | wall_all[:, :, k]).any()}
     repairs.report()
 
@@ -277,7 +275,7 @@ class _Repairs:
 
     TEXT = {
         "islands": "removed label islands away from the heart",
-        "stray": "relabelled stray cavity voxels outside the left ventricle (in the RV) as RV",
+        "stray": "took stray cavity voxels outside the left ventricle (in the RV) out of the cavity",
         "holes": "filled holes in the wall",
         "papillary": "counted papillary muscles (wall inside the cavity) as cavity",
         "noise": "smoothed boundary noise (voxels flipped by a 3 x 3 majority vote)",
@@ -330,14 +328,14 @@ def _remove_islands(cavity: np.ndarray, wall: np.ndarray, rv: np.ndarray | None,
     return cavity & keep, wall & keep
 
 
-def _clean_slice(cav: np.ndarray, wall: np.ndarray, rv: np.ndarray | None, k: int,
-                 pixel_mm: float, repairs: _Repairs, source: str) -> dict:
+def _clean_slice(cav: np.ndarray, wall: np.ndarray, k: int, pixel_mm: float,
+                 repairs: _Repairs, source: str) -> dict:
     """Cleaned cavity and epicardial masks of one slice, its wall coverage and its rim.
 
-    In this order: in-slice islands of cavity + wall go; cavity pieces outside the wall's ring
-    are stray (an RV mislabelled as cavity) and go; holes in the wall are filled; wall inside
-    the cavity (papillary muscles, free or attached, narrower than ``PAPILLARY_MM``) becomes
-    cavity (common practice in CMR volumetry); boundary noise is voted away when it is there.
+    In this order: boundary noise is voted away when it is there; in-slice islands of cavity +
+    wall go; cavity pieces outside the wall's ring are stray (an RV mislabelled as cavity) and
+    go; holes in the wall are filled; wall inside the cavity (papillary muscles, free or
+    attached, narrower than ``PAPILLARY_MM``) becomes cavity (common practice in CMR volumetry).
     """
     if not cav.any() and not wall.any():
         return {}

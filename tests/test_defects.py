@@ -35,7 +35,7 @@ REPAIR_WARNING = {
     "holes": "filled holes in the wall",
     "noise": "smoothed boundary noise",
     "papillary": "counted papillary muscles (wall inside the cavity) as cavity",
-    "stray": "relabelled stray cavity voxels outside the left ventricle (in the RV)",
+    "stray": "took stray cavity voxels outside the left ventricle (in the RV) out of the cavity",
     "missing": "hold no label between labelled slices; the gap is bridged",
 }
 
