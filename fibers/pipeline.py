@@ -69,19 +69,26 @@ class _Clock:
 
 
 def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landmarks | None = None,
-        clock: _Clock | None = None, notes: tuple[str, ...] = ()) -> Result:
+        clock: _Clock | None = None, notes: tuple[str, ...] = (), facts: dict | None = None) -> Result:
     """Run every stage on checked contours and a resolved case (``fibers.io.case.Case``).
 
-    ``notes`` are warnings raised earlier (while reading the inputs) that belong in the result.
+    ``notes`` are warnings raised earlier (while reading the inputs) that belong in the result;
+    ``facts`` are summary entries found while reading them (the label map's slice table and
+    frames), merged into the summary.
     """
     clock = clock or _Clock()
+    base = base_choice(case)
+    if getattr(case, "slice_thickness", None):
+        contours = replace(contours, slice_thickness=float(case.slice_thickness))
     landmarks = landmarks if landmarks is not None else case.landmarks
     caught = []
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         with clock.stage("stack", lambda: f"{len(stack.slices)} slices, base to apex; breath-hold shifts up to "
                          f"{max(np.linalg.norm(sl.shift) for sl in stack.slices):.1f} mm removed"):
-            stack = stack_stage.check_stack(contours, align_slices=case.align_slices)
+            stack = stack_stage.check_stack(contours, align_slices=case.align_slices,
+                                            centreline=getattr(case, "centreline", "straight"),
+                                            base=base)
         with clock.stage("surfaces", lambda: f"fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm"):
             surf = surface_stage.fit_surfaces(stack)
         with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
@@ -114,6 +121,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                     timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
                     quadratic=quad)
     result.summary = summarise(result)
+    result.summary.update(_slice_facts(result.stack, contours, base, facts or {}))
     return result
 
 
@@ -122,6 +130,29 @@ def _mesh_line(wall, quad) -> str:
         return f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"
     return (f"{len(quad.tets):,} quadratic tetrahedra, {len(quad.points):,} nodes "
             f"(fields on their {len(wall.tets):,} linear children)")
+
+
+def base_choice(case) -> str:
+    """``[geometry] base`` as resolved: "slab" for a label map, "slice" for contours by default."""
+    chosen = getattr(case, "base", None)
+    return chosen or ("slab" if getattr(case, "labelmap", None) is not None else "slice")
+
+
+def _slice_facts(stack, contours: RawContours, base: str, facts: dict) -> dict:
+    """Summary entries on slices: the slice table, the base plane and the frame facts."""
+    heights = sorted(sl.height for sl in stack.slices)
+    spacing = float(np.median(np.diff(heights))) if len(heights) > 1 else 0.0
+    thickness = float(contours.slice_thickness) or spacing
+    slices = facts.get("slices") or [
+        {"id": sl.slice_id, "wall_coverage": None, "counted": True,
+         "reason": "contour given" + ("" if sl.endo is not None else " (epicardium only)")}
+        for sl in stack.slices]
+    out = {"slices": slices,
+           "base": {"plane": base, "slice_thickness_mm": round(thickness, 3),
+                    "meaning": "upper face of the basal slab (half a slice above the basal "
+                               "contour)" if base == "slab" else "the basal contour's plane"}}
+    out.update({k: v for k, v in facts.items() if k != "slices"})
+    return out
 
 
 def _contour_box(contours: RawContours, margin: float) -> Box:
@@ -183,11 +214,12 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
     with clock.stage("read", lambda: f"{len(contours.points):,} contour points from {contours.source}"):
         with warnings.catch_warnings(record=True) as record:
             warnings.simplefilter("always")
-            contours, landmarks, box, inputs = _read_inputs(case)
+            contours, landmarks, box, inputs, facts = _read_inputs(case)
     notes = tuple(str(w.message) for w in record)
     for message in notes:
         log.warning("%s", message)
-    result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes)
+    result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes,
+                 facts=facts)
 
     tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
     try:
@@ -201,7 +233,11 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
             shutil.copyfile(src, tmp / name)
         with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
             outputs.write_all(tmp, result)
+            if case.labelmap is not None:   # the extracted contours, to edit and rebuild
+                from fibers.io import contours as contour_io
+                contour_io.write_contours(tmp / "contours.csv", result.contours)
         manifest = outputs.manifest(result, case, inputs)
+        _record_resolved(manifest, case, facts)
         if report:
             from fibers import report as report_stage
             with clock.stage("report", "report/index.html"):
@@ -226,21 +262,43 @@ def _read_inputs(case):
 
     if case.contours is not None:
         contours = contour_io.read_contours(case.contours)
-        return contours, case.landmarks, None, [_provenance(case.contours)]
+        return contours, case.landmarks, None, [_provenance(case.contours)], {}
     from fibers import masks
     from fibers.io import labelmap as labelmap_io
 
-    labels, affine = labelmap_io.read_labelmap(case.labelmap, frame=case.frame)
     labels_cfg = dict(case.labels)
     if labels_cfg.get("rv") == 0:  # rv = 0 in the case file: the map has no RV label
         labels_cfg["rv"] = None
     values = masks.LabelValues(**labels_cfg)
-    contours, found, box = masks.contours_from_labelmap(labels, affine, values, source=case.labelmap.name)
-    spacing = float(np.linalg.norm(np.asarray(affine)[:3, masks.slice_axis(affine)]))
-    contours = replace(contours, slice_thickness=spacing)
+    image = labelmap_io.load_labelmap(case.labelmap, frame=case.frame, cavity=values.cavity)
+    if len(image.frame_cavity_ml) > 1:
+        log.info("%-13s %s", "frame", f"{image.frame} of {len(image.frame_cavity_ml)}: "
+                 f"{image.frame_reason}, cavity {image.frame_cavity_ml[image.frame]:.1f} mL")
+    found = masks.extract(image.labels, image.affine, values, source=case.labelmap.name)
     # the user's explicit points win over the ones read off the label map
-    landmarks = case.landmarks if case.landmarks.present else found
-    return contours, landmarks, box, [_provenance(case.labelmap)]
+    landmarks = case.landmarks if case.landmarks.present else found.landmarks
+    for message in masks.orientation_warnings(found, landmarks, case.labelmap.name):
+        warnings.warn(message)
+    spacing = float(np.linalg.norm(image.affine[:3, masks.slice_axis(image.affine)]))
+    contours = replace(found.contours, slice_thickness=case.slice_thickness or spacing)
+    box = masks.field_of_view(image.full_shape, image.full_affine)
+    facts = {"slices": list(found.slices), "frame": image.frame,
+             "frame_reason": image.frame_reason,
+             "frame_cavity_volumes_ml": list(image.frame_cavity_ml)}
+    return contours, landmarks, box, [_provenance(case.labelmap)], facts
+
+
+def _record_resolved(manifest: dict, case, facts: dict) -> None:
+    """Parameters resolved while building: the frame used, the base plane, the thickness."""
+    import copy
+
+    params = manifest["parameters"] = copy.deepcopy(manifest["parameters"])
+    if "frame" in facts:   # the frame used, in its table and at the top for a quick look
+        params.setdefault("input", {})["frame"] = facts["frame"]
+        params["frame"] = facts["frame"]
+    geometry = params.setdefault("geometry", {})
+    geometry["base"] = base_choice(case)
+    geometry["slice_thickness"] = manifest["summary"]["base"]["slice_thickness_mm"]
 
 
 def _provenance(path: Path) -> dict:

@@ -5,9 +5,17 @@ slices are planned normal to the ventricle's long axis, and the normal is not di
 in-plane breath-hold shifts that corrupt slice centroids. Its sense (apex to base) is fixed by
 which end of the stack has the larger contours and the endocardial contours.
 
-Breath-hold shifts are removed by fitting a smooth centreline (a polynomial in height, quadratic
-for six slices or more, else straight) through the epicardial centroids and moving each slice
-in its plane onto it.
+Breath-hold shifts are removed by fitting a centreline through the epicardial centroids (a
+straight line, or a quadratic in height for six slices or more, as ``centreline`` says) with a
+robust loss (``scipy.optimize.least_squares``, ``soft_l1`` with a 1 mm scale), so one slice
+moved by a bad breath-hold does not bend the line, and moving each slice in its plane onto it.
+A slice's ``shift`` is the vector added to its input points (centreline minus centroid).
+
+Contours from other tools: dense contours are resampled by arc length to at most
+``MAX_CONTOUR_POINTS`` points first, so every check stays fast; tiny loops (a few points doubling
+back, enclosing less than ``MAX_LOOP_AREA_MM2``) are cut out with a warning, a real
+self-crossing is refused. One missing slice, or one missing endocardial contour, between slices
+that have them is bridged by the surface fit with a warning; two or more in a row are refused.
 """
 
 from __future__ import annotations
@@ -22,15 +30,21 @@ from fibers.types import LongAxis, RawContours, SliceContours, Stack
 log = logging.getLogger(__name__)
 
 MIN_POINTS = 6               # fewer points cannot describe a closed contour
-MAX_TILT_DEG = 10.0          # "parallel within a few degrees" (DESIGN 3.1), with room for noise
+MAX_TILT_DEG = 10.0          # "parallel within a few degrees", with room for noise
 MAX_OUT_OF_PLANE_MM = 2.0    # RMS distance of a slice's points from its plane
 MIN_SLICE_GAP_MM = 1.0       # closer than this, two slices are the same plane
 MIN_ENDO_SLICES = 2
 MIN_EXTENT_MM = 20.0
 EPI_RADIUS_MM = (5.0, 120.0)  # plausible epicardial radius in mm; outside, the units are wrong
+MAX_CONTOUR_POINTS = 1000    # denser contours are resampled by arc length (0.5 mm or coarser)
+RESAMPLE_STEP_MM = 0.5
+MAX_LOOP_AREA_MM2 = 1.0      # loops smaller than this are a tracing tool's slip, cut out
+MAX_SHIFT_MM = 5.0           # a breath-hold shift larger than this is reported
+ROBUST_SCALE_MM = 1.0        # soft_l1 scale of the centreline fit: shifts beyond it count less
 
 
-def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
+def check_stack(contours: RawContours, *, align_slices: bool = True,
+                centreline: str = "straight", base: str = "slice") -> Stack:
     """Check, order and align a contour stack.
 
     Parameters
@@ -38,7 +52,13 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     contours : RawContours
         Points as read, any slice order, either winding.
     align_slices : bool
-        Remove in-plane breath-hold shifts by fitting a smooth centreline.
+        Remove in-plane breath-hold shifts by fitting a centreline.
+    centreline : {"straight", "quadratic"}
+        Model of the centreline (a quadratic needs six slices; fewer fall back to straight).
+    base : {"slice", "slab"}
+        Base plane at the most basal contour's plane, or at the upper face of its slab, half a
+        slice thickness above it (``contours.slice_thickness``, or the median slice spacing
+        when that is 0).
 
     Returns
     -------
@@ -53,6 +73,7 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
         endocardium outside its epicardium, a stack too short, or coordinates not in mm.
     """
     src = contours.source
+    notes = []
     groups = _group(contours)
     ids = sorted({k for _, k in groups})
 
@@ -139,13 +160,12 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     if n_endo < MIN_ENDO_SLICES:
         raise InputError(f"{src}: only {n_endo} slice(s) show the endocardium; a wall needs at least {MIN_ENDO_SLICES}")
     last_endo = int(np.nonzero(has_endo)[0].max())
-    if not has_endo[: last_endo + 1].all():
-        k = order[int(np.nonzero(~has_endo[: last_endo + 1])[0][0])]
-        raise InputError(
-            f"{src}, slice {k}: no endocardial contour, but slices nearer the apex have one; "
-            f"only the most apical slices may lack it: add the contour or drop the slice")
-    # the base plane: the most basal slice, or the upper face of its slab for a label map
-    base_h = float(centres[order[0]] @ axis) + 0.5 * float(contours.slice_thickness)
+    notes += _check_endo_gaps(has_endo[: last_endo + 1], order, src)
+    heights_bta = np.array([float(centres[k] @ axis) for k in order])
+    spacing = _check_slice_gaps(heights_bta, order, src, notes)
+    # the base plane: the most basal slice, or the upper face of its slab
+    thickness = float(contours.slice_thickness) or spacing
+    base_h = float(centres[order[0]] @ axis) + (0.5 * thickness if base == "slab" else 0.0)
     extent = base_h - float(centres[order[-1]] @ axis)
     if extent < MIN_EXTENT_MM:
         raise InputError(f"{src}: the stack spans only {extent:.1f} mm from base to apex; a wall needs at least {MIN_EXTENT_MM:.0f} mm")
@@ -154,6 +174,7 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     plane = _plane_frame(axis)
     e1 = plane[0]
     slices_2d = {}
+    looped = []
     for k in order:
         entry = {}
         for s in ("epi", "endo"):
@@ -168,11 +189,14 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
                     f"({abs(area):.2g} mm^2); its points lie on a line or fold back on themselves")
             if area < 0:
                 pts, xy, lines = pts[::-1], xy[::-1], lines[::-1]
-            cross = _self_crossing(xy)
+            keep, loops, cross = _untangle(xy)
             if cross is not None:
                 raise InputError(
                     f"{src}, line {lines[cross]}, slice {k}: the {s}cardial contour crosses itself "
                     f"near this point; redraw the contour as one simple closed curve")
+            if loops:
+                looped.append(f"{s} {k}")
+                pts, xy, lines = pts[keep], xy[keep], lines[keep]
             entry[s] = (pts, xy, lines)
         if "endo" in entry:
             inside = _inside_polygon(entry["endo"][1], entry["epi"][1])
@@ -188,19 +212,18 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
                     f"or leaves its epicardial contour; the endocardium must lie inside the epicardium")
         slices_2d[k] = entry
 
-    # smooth centreline through the epicardial centroids
+    if looped:
+        notes.append(f"{src}: tiny loops (under {MAX_LOOP_AREA_MM2:g} mm^2) cut out of the "
+                     f"contours of {', '.join(looped)} (structure and slice)")
+
+    # robust centreline through the epicardial centroids
     hs = np.array([float(centres[k] @ axis) for k in order])
     cents = np.array([_centroid2d(slices_2d[k]["epi"][1]) for k in order])
-    degree = 2 if len(order) >= 6 else 1
     z = hs - hs.mean()
-    fit = np.polynomial.polynomial.polyfit(z, cents, degree)
-    line = np.polynomial.polynomial.polyval(z, fit).T
+    degree = 2 if centreline == "quadratic" and len(order) >= 6 else 1
+    line = fit_centreline(z, cents, degree)
     shifts2d = (line - cents) if align_slices else np.zeros_like(cents)
-    # the straight axis: a line through the centreline's straight part
-    straight = np.polynomial.polynomial.polyfit(z, cents, 1)
-    base_xy = np.polynomial.polynomial.polyval(hs[0] - hs.mean(), straight)
-    if not align_slices:
-        base_xy = cents[0]
+    base_xy = fit_centreline(z, cents, 1, at=z[:1])[0] if align_slices else cents[0]
     base_centre = base_xy @ plane + base_h * axis
 
     out = []
@@ -214,12 +237,14 @@ def check_stack(contours: RawContours, *, align_slices: bool = True) -> Stack:
     if align_slices:
         mags = np.linalg.norm(shifts2d, axis=1)
         log.debug("aligned %d slices: breath-hold shifts up to %.1f mm (mean %.1f mm)", len(order), mags.max(), mags.mean())
-    warnings = []
-    big = np.linalg.norm(shifts2d, axis=1).max() if align_slices else 0.0
-    if big > 8.0:
-        warnings.append(f"in-plane slice shifts up to {big:.1f} mm were removed; check the slices belong to one breath-hold series")
+    mags = np.linalg.norm(shifts2d, axis=1)
+    moved = [f"{k} ({m:.1f} mm)" for k, m in zip(order, mags) if m > MAX_SHIFT_MM]
+    if moved:
+        notes.append(f"{src}: slice(s) {', '.join(moved)} moved more than {MAX_SHIFT_MM:g} mm in "
+                     "plane to the centreline (breath-hold shift); check they belong to one "
+                     "breath-hold series")
     return Stack(slices=tuple(out), axis=LongAxis(base_centre=base_centre, direction=axis, reference=e1),
-                 source=src, warnings=tuple(warnings))
+                 source=src, warnings=tuple(notes))
 
 
 def _group(contours: RawContours) -> dict:
@@ -248,6 +273,8 @@ def _group(contours: RawContours) -> dict:
             raise InputError(
                 f"{src}, line {contours.line[rows[0]]}, slice {k}: the {s} contour has only "
                 f"{len(pts)} distinct points; a closed contour needs at least {MIN_POINTS}")
+        if len(pts) > MAX_CONTOUR_POINTS:
+            pts, lines = _resample(pts, lines)
         groups[(s, k)] = (pts, lines)
     return groups
 
@@ -279,11 +306,101 @@ def _centroid2d(xy: np.ndarray) -> np.ndarray:
     return np.array([((x + xn) * c).sum(), ((y + yn) * c).sum()]) / (6 * a)
 
 
-def _self_crossing(xy: np.ndarray) -> int | None:
-    """Index of a point where the closed polygon crosses itself, or None.
+def fit_centreline(z: np.ndarray, centroids: np.ndarray, degree: int, *,
+                   at: np.ndarray | None = None) -> np.ndarray:
+    """Robust polynomial centreline through slice centroids.
 
-    Every pair of non-adjacent edges is tested (orientation signs), in blocks of rows so a
-    contour of thousands of points stays within memory.
+    Parameters
+    ----------
+    z : ndarray (S,), mm
+        Slice heights (centred).
+    centroids : ndarray (S, 2), mm
+        In-plane centroids.
+    degree : int
+        1 (straight) or 2 (quadratic).
+    at : ndarray (T,), mm, optional
+        Heights to evaluate at; default ``z``.
+
+    Returns
+    -------
+    ndarray (T, 2), mm
+        The centreline's in-plane position at each height. Fitted by
+        ``scipy.optimize.least_squares`` with the ``soft_l1`` loss (scale ``ROBUST_SCALE_MM``),
+        started from ordinary least squares, so one shifted slice barely pulls the line.
+    """
+    from scipy.optimize import least_squares
+
+    z = np.asarray(z, float)
+    at = z if at is None else np.asarray(at, float)
+    degree = min(degree, len(z) - 1)
+    V = np.polynomial.polynomial.polyvander(z, degree)
+    start = np.linalg.lstsq(V, centroids, rcond=None)[0]          # (degree + 1, 2)
+
+    def residual(c):
+        return (V @ c.reshape(degree + 1, 2) - centroids).ravel()
+    fit = least_squares(residual, start.ravel(), loss="soft_l1", f_scale=ROBUST_SCALE_MM)
+    return np.polynomial.polynomial.polyvander(at, degree) @ fit.x.reshape(degree + 1, 2)
+
+
+def _check_endo_gaps(has_endo: np.ndarray, order: list, src: str) -> list[str]:
+    """One slice without endocardium between slices with it is bridged; two in a row refused."""
+    missing = np.flatnonzero(~has_endo)
+    if not missing.size:
+        return []
+    runs = np.split(missing, np.flatnonzero(np.diff(missing) > 1) + 1)
+    for run in runs:
+        if len(run) >= 2:
+            raise InputError(
+                f"{src}, slices {order[run[0]]} to {order[run[-1]]}: no endocardial contour on "
+                f"{len(run)} slices in a row, but slices nearer the apex have one; one missing "
+                "contour is bridged, two or more in a row are not: add the contours (only the "
+                "most apical slices may lack it)")
+    ids = ", ".join(str(order[j]) for j in missing)
+    return [f"{src}: slice(s) {ids} have no endocardial contour between slices that do; the "
+            "endocardium there is bridged by the surface fit"]
+
+
+def _check_slice_gaps(heights: np.ndarray, order: list, src: str, notes: list) -> float:
+    """Median slice spacing (mm); a gap of about two spacings (one slice missing) is bridged
+    with a note, a gap of three or more spacings refused."""
+    gaps = np.abs(np.diff(heights))
+    if not gaps.size:
+        return 0.0
+    spacing = float(np.median(gaps))
+    ratio = gaps / max(spacing, 1e-9)
+    worst = int(np.argmax(ratio))
+    if ratio[worst] >= 2.5:
+        raise InputError(
+            f"{src}, slices {order[worst]} and {order[worst + 1]}: {gaps[worst]:.1f} mm apart, "
+            f"{ratio[worst]:.1f} times the usual {spacing:.1f} mm; two or more slices are missing "
+            "there: one missing slice is bridged, two in a row are not")
+    one = np.flatnonzero(ratio >= 1.5)
+    if one.size:
+        pairs = ", ".join(f"{order[j]}-{order[j + 1]}" for j in one)
+        notes.append(f"{src}: one slice is missing between slices {pairs} ({spacing:.1f} mm "
+                     "spacing elsewhere); the gap is bridged by the surface fit")
+    return spacing
+
+
+def _resample(pts: np.ndarray, lines: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """A dense closed contour resampled evenly by arc length to at most ``MAX_CONTOUR_POINTS``
+    points, ``RESAMPLE_STEP_MM`` apart or more; each new point keeps the line number of the
+    input point it falls after."""
+    closed = np.vstack([pts, pts[:1]])
+    step = np.linalg.norm(np.diff(closed, axis=0), axis=1)
+    arc = np.concatenate([[0.0], np.cumsum(step)])
+    n = int(min(MAX_CONTOUR_POINTS, max(MIN_POINTS * 4, arc[-1] / RESAMPLE_STEP_MM)))
+    at = np.linspace(0.0, arc[-1], n, endpoint=False)
+    out = np.column_stack([np.interp(at, arc, closed[:, c]) for c in range(3)])
+    where = np.clip(np.searchsorted(arc, at, side="right") - 1, 0, len(pts) - 1)
+    return out, lines[where]
+
+
+def _crossings(xy: np.ndarray) -> np.ndarray:
+    """Pairs (i, j), i < j, of non-adjacent edges of a closed polygon that cross, (P, 2).
+
+    Every pair is tested (orientation signs) in blocks of rows; contours reach this after
+    resampling to at most ``MAX_CONTOUR_POINTS`` points, so the work stays bounded.
     """
     p, q = xy, np.roll(xy, -1, axis=0)
     n = len(xy)
@@ -293,15 +410,40 @@ def _self_crossing(xy: np.ndarray) -> int | None:
         return (b[..., 0] - a[..., 0]) * (c[..., 1] - a[..., 1]) - (b[..., 1] - a[..., 1]) * (c[..., 0] - a[..., 0])
 
     pj, qj = p[None, :, :], q[None, :, :]
+    found = []
     for start in range(0, n, 256):
         rows = idx[start:start + 256]
         pi, qi = p[rows, None, :], q[rows, None, :]
         hit = (orient(pi, qi, pj) * orient(pi, qi, qj) < 0) & (orient(pj, qj, pi) * orient(pj, qj, qi) < 0)
-        gap = np.abs(rows[:, None] - idx[None, :])
-        hit &= (gap > 1) & (gap != n - 1)  # neighbouring edges share a point
-        if hit.any():
-            return int(rows[np.nonzero(hit.any(axis=1))[0][0]])
-    return None
+        gap = rows[:, None] - idx[None, :]
+        hit &= (gap < -1) & (gap != -(n - 1))  # j > i + 1; neighbouring edges share a point
+        r, c = np.nonzero(hit)
+        found.append(np.column_stack([rows[r], c]))
+    return np.concatenate(found) if found else np.zeros((0, 2), int)
+
+
+def _untangle(xy: np.ndarray) -> tuple[np.ndarray, int, int | None]:
+    """Cut tiny loops out of a closed polygon (n, 2), mm.
+
+    Returns the indices of the points kept, the number of loops cut, and the index of a point
+    near a real self-crossing (both sides of it enclose ``MAX_LOOP_AREA_MM2`` or more), or None.
+    """
+    keep = np.arange(len(xy))
+    cut = 0
+    for _ in range(64):
+        pairs = _crossings(xy[keep])
+        if not len(pairs):
+            return keep, cut, None
+        i, j = (int(v) for v in pairs[0])
+        inner = np.arange(i + 1, j + 1)             # points between the two crossing edges
+        a_in = abs(_signed_area(xy[keep[inner]]))
+        a_out = abs(_signed_area(xy[keep[np.setdiff1d(np.arange(len(keep)), inner)]]))
+        if min(a_in, a_out) >= MAX_LOOP_AREA_MM2 or len(keep) - len(inner) < MIN_POINTS:
+            return keep, cut, int(keep[i])
+        drop = inner if a_in <= a_out else np.setdiff1d(np.arange(len(keep)), inner)
+        keep = np.delete(keep, drop)
+        cut += 1
+    return keep, cut, int(keep[0])
 
 
 def _inside_polygon(points: np.ndarray, polygon: np.ndarray) -> np.ndarray:

@@ -16,7 +16,7 @@ import pytest
 from scipy.spatial import cKDTree
 
 from fibers.errors import InputError
-from fibers.io.labelmap import read_labelmap, write_labelmap
+from fibers.io.labelmap import load_labelmap, read_labelmap, write_labelmap
 from fibers.masks import LabelValues, contours_from_labelmap, field_of_view, slice_axis
 from fibers.demo.voxels import voxelise
 from fibers.demo.ventricle import demo_subject, spheroid_shell
@@ -68,10 +68,16 @@ def test_round_trip_keeps_labels_and_affine(tmp_path, shell_map, nifti, suffix):
     assert np.linalg.det(affine[:3, :3]) < 0
     path = write_labelmap(tmp_path / f"seg{suffix}", labels, affine, nifti=nifti)
     assert isinstance(nib.load(path), nib.Nifti2Image if nifti == 2 else nib.Nifti1Image)
-    back, aff = read_labelmap(path)
-    assert back.dtype.kind == "i" and back.shape == labels.shape
-    np.testing.assert_array_equal(back, labels)
-    np.testing.assert_allclose(aff, affine, atol=1e-4)       # float32 header fields
+    image = load_labelmap(path)
+    assert image.labels.dtype.kind == "i" and image.full_shape == labels.shape
+    np.testing.assert_allclose(image.full_affine, affine, atol=1e-4)   # float32 header fields
+    # only the labelled box is loaded: the crop's corner is a whole voxel of the full grid
+    corner = np.linalg.solve(affine[:3, :3], image.affine[:3, 3] - affine[:3, 3])
+    np.testing.assert_allclose(corner, np.rint(corner), atol=1e-3)
+    lo = np.rint(corner).astype(int)
+    box = tuple(slice(a, a + n) for a, n in zip(lo, image.labels.shape))
+    np.testing.assert_array_equal(image.labels, labels[box])
+    assert np.count_nonzero(image.labels) == np.count_nonzero(labels)
 
 
 def test_qform_only_header_is_honoured(tmp_path, shell_map):
@@ -81,7 +87,7 @@ def test_qform_only_header_is_honoured(tmp_path, shell_map):
     img.set_qform(affine, code=1)
     img.set_sform(None, code=0)
     nib.save(img, tmp_path / "q.nii")
-    _, aff = read_labelmap(tmp_path / "q.nii")
+    aff = load_labelmap(tmp_path / "q.nii").full_affine
     np.testing.assert_allclose(aff, affine, atol=1e-3)
 
 
@@ -93,21 +99,26 @@ def test_metres_are_converted_to_mm(tmp_path, shell_map):
     img.header.set_xyzt_units(xyz="meter")
     nib.save(img, tmp_path / "m.nii.gz")
     with pytest.warns(UserWarning, match="meter; converted to mm"):
-        _, aff = read_labelmap(tmp_path / "m.nii.gz")
+        aff = load_labelmap(tmp_path / "m.nii.gz").full_affine
     np.testing.assert_allclose(aff, affine, atol=1e-3)
 
 
-def test_4d_needs_frame(tmp_path, shell_map):
+def test_4d_frames_by_number_or_cavity_size(tmp_path, shell_map):
     labels, affine = shell_map
-    series = np.stack([np.zeros_like(labels), labels, np.zeros_like(labels)], axis=3)
+    small = np.where(labels == 1, 2, labels)          # a frame with no cavity at all
+    series = np.stack([small, labels, small], axis=3)
     write_labelmap(tmp_path / "cine.nii.gz", series, affine)
-    with pytest.raises(InputError, match=r"cine.nii.gz is a 4-D image with 3 frames; "
-                                         r"set \[input\] frame = N"):
-        read_labelmap(tmp_path / "cine.nii.gz")
+    image = load_labelmap(tmp_path / "cine.nii.gz")
+    # cavity volume = voxel count x voxel volume |det A| (closed form)
+    voxel_ml = abs(np.linalg.det(affine[:3, :3])) / 1000.0
+    assert image.frame == 1 and image.frame_reason.startswith("end-diastole")
+    assert image.frame_cavity_ml[1] == pytest.approx((labels == 1).sum() * voxel_ml, rel=1e-4)
+    assert image.frame_cavity_ml[0] == 0.0
+    assert load_labelmap(tmp_path / "cine.nii.gz", frame="es").frame == 0
     with pytest.raises(InputError, match="frame 3 is out of range"):
         read_labelmap(tmp_path / "cine.nii.gz", frame=3)
-    frame1, _ = read_labelmap(tmp_path / "cine.nii.gz", frame=1)
-    np.testing.assert_array_equal(frame1, labels)
+    given = load_labelmap(tmp_path / "cine.nii.gz", frame=2)
+    assert given.frame == 2 and given.frame_reason == "given in [input] frame"
 
 
 def test_2d_and_unreadable_files_are_refused(tmp_path, shell_map):
@@ -186,7 +197,8 @@ def test_tilted_stack_areas_match_oblique_sections(shell):
     |n| = 1: pi b b a / sqrt(q) * (1 - d^2 / q), q = b^2 (n1^2 + n2^2) + a^2 n3^2 (closed form,
     from memory). Mid slices only, away from the base plane."""
     labels, affine = voxelise(shell, tilt_deg=12.0)
-    with pytest.warns(UserWarning, match="dropped"):   # the basal slice crosses the base plane
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")   # the basal slice crosses the base plane: 50% rule
         contours, _, _ = contours_from_labelmap(labels, affine)
     normal = shell.to_local(affine[:3, 2][None, :] + shell.translation)[0]
     normal /= np.linalg.norm(normal)
@@ -252,10 +264,10 @@ def test_islands_and_holes_are_removed_with_a_warning(shell_map):
     with pytest.warns(UserWarning) as rec:
         got, _, _ = contours_from_labelmap(dirty, affine, source="seg.nii.gz")
     messages = sorted(str(w.message) for w in rec)
-    assert messages == [f"seg.nii.gz: slice {k}, cavity + wall: removed 1 island(s) and filled "
-                        "0 hole voxel(s)",
-                        f"seg.nii.gz: slice {k}, cavity: removed 0 island(s) and filled "
-                        "1 hole voxel(s)"]
+    assert messages == [f"seg.nii.gz: counted papillary muscles (wall inside the cavity) as cavity: "
+                        f"1 voxel(s) on slice(s) {k}",
+                        f"seg.nii.gz: removed label islands away from the heart: 4 voxel(s) on "
+                        f"slice(s) {k}"]
     np.testing.assert_allclose(got.points, ref.points)
 
 
@@ -276,12 +288,17 @@ def test_swapped_cavity_and_wall_values(shell_map):
         contours_from_labelmap(labels, affine, LabelValues(cavity=2, wall=1, rv=3), source="seg.nii")
 
 
-def test_empty_middle_slice_is_named(shell_map):
+def test_one_empty_middle_slice_is_bridged_two_are_refused(shell_map):
     labels, affine = shell_map
     holed = labels.copy()
     holed[:, :, 7] = 0
-    with pytest.raises(InputError, match=r"seg.nii: slice 7 has no cavity or wall label but lies "
-                                         r"between labelled slices 2 and 12"):
+    with pytest.warns(UserWarning, match=r"seg.nii: slice\(s\) 7 hold no label between labelled "
+                                         r"slices; the gap is bridged"):
+        got, _, _ = contours_from_labelmap(holed, affine, source="seg.nii")
+    assert 7 not in set(got.slice_id) and {6, 8} <= set(got.slice_id)
+    holed[:, :, 8] = 0
+    with pytest.raises(InputError, match=r"seg.nii: slices 7 to 8 have no cavity or wall label "
+                                         r"but lie between labelled slices 2 and 12"):
         contours_from_labelmap(holed, affine, source="seg.nii")
 
 

@@ -3,7 +3,8 @@
 Two modes share one generator:
 
 - the demo subject: an end-diastolic ventricle of realistic size whose wall thickness varies
-  around and along the axis, with contour noise, breath-hold shifts and an oblique frame;
+  around and along the axis, with contour noise and breath-hold shifts, placed as a heart sits
+  in the chest (``anatomical_frame``);
 - the exact mode: coaxial spheroids cut by a base plane, whose volumes have a closed form
   (elementary calculus: the volume of a spheroid cap), for the tests.
 
@@ -180,13 +181,39 @@ def oblique_frame(seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
     return turn @ spin @ tilt, rng.uniform(-60, 60, 3) + [0.0, -40.0, 80.0]
 
 
+def anatomical_frame(septum_deg: float = 115.0, *, seed: int = 7) -> tuple[np.ndarray, np.ndarray]:
+    """A rotation and translation that place the body as a heart sits in the chest.
+
+    The world frame is NIfTI's right-anterior-superior (+x toward the patient's right, +y
+    anterior, +z superior). The apex points to the left, anteriorly and inferiorly (apex
+    direction about (-0.6, 0.55, -0.58), common practice for normal anatomy), and the local
+    angle ``septum_deg`` (the septal bisector) faces the right-anterior side, where the right
+    ventricle lies. ``seed`` turns the axis by a few degrees so subjects differ.
+    """
+    rng = np.random.default_rng(seed)
+    apex = np.array([-0.6, 0.55, -0.58]) + rng.normal(0.0, 0.05, 3)
+    up = -apex / np.linalg.norm(apex)                       # local +z: apex to base
+    toward_rv = np.array([0.7, 0.7, 0.1])
+    s = toward_rv - (toward_rv @ up) * up
+    s /= np.linalg.norm(s)
+    t = np.cross(up, s)
+    phi = np.radians(septum_deg)
+    # local e1, e2 such that cos(phi) e1 + sin(phi) e2 = s
+    e1 = np.cos(phi) * s - np.sin(phi) * t
+    e2 = np.cross(up, e1)
+    rotation = np.column_stack([e1, e2, up])
+    return rotation, np.array([20.0, -30.0, 60.0]) + rng.uniform(-10, 10, 3)
+
+
 def demo_subject(seed: int = 7) -> SyntheticLV:
     """The built-in end-diastolic ventricle: about 120 mL cavity, 9-11 mm wall, 85 mm long.
 
     Thickness varies around (a thicker septum side, a slightly elliptic cavity) and along the
-    axis (the modulation grows toward the base).
+    axis (the modulation grows toward the base). It sits as a heart does in the right-anterior-
+    superior world frame (``anatomical_frame``): apex to the left, anterior and inferior, the
+    septum facing right-anterior.
     """
-    rotation, translation = oblique_frame(seed)
+    rotation, translation = anatomical_frame(seed=seed)
     return SyntheticLV(
         endo=(25.0, 57.0), epi=(34.5, 65.0), base_z=20.0,
         endo_waves=((2.0, 0.05, 0.4, 0.3),),

@@ -27,7 +27,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     "input": {
         "contours": ("path", None, None, None, "contours CSV, relative to the case file"),
         "labelmap": ("path", None, None, None, "segmentation label map (NIfTI), instead of contours"),
-        "frame": ("int", None, 0, 10_000, "frame of a 4-D label map to build (end-diastole)"),
+        "frame": ("frame", None, 0, 10_000, "frame of a 4-D label map: a number, \"ed\" (largest cavity, the default) or \"es\" (smallest)"),
     },
     "input.labels": {
         "cavity": ("int", 1, 0, 65535, "label value of the left-ventricular cavity"),
@@ -40,6 +40,9 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "geometry": {
         "align_slices": ("bool", True, None, None, "remove in-plane breath-hold shifts"),
+        "centreline": ("choice:straight|quadratic", "straight", None, None, "model of the centreline the slices are aligned to"),
+        "base": ("choice:slab|slice", None, None, None, "base plane at the upper face of the basal slab or at the basal contour's plane (default: slab for a label map, slice for contours)"),
+        "slice_thickness": ("float", None, 0.5, 50.0, "thickness a slice stands for, mm (default: the image's slice spacing, or the contours' median spacing)"),
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
@@ -103,6 +106,9 @@ class Case:
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
     septal_sectors: str = "fixed"
     mesh_order: int = 1                          # [mesh] order: 1 linear, 2 quadratic tetrahedra
+    centreline: str = "straight"
+    base: str | None = None          # None: "slab" for a label map, "slice" for contours
+    slice_thickness: float | None = None
 
 
 def read_case(path: str | Path) -> Case:
@@ -152,7 +158,9 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
                 law=law, pools=pools, values=values,
                 septal_sectors=values["segments"]["septal_sectors"],
-                mesh_order=values["mesh"]["order"])
+                mesh_order=values["mesh"]["order"],
+                centreline=values["geometry"]["centreline"], base=values["geometry"]["base"],
+                slice_thickness=values["geometry"]["slice_thickness"])
 
 
 def fiber_law(fib: dict) -> FiberLaw:
@@ -214,6 +222,12 @@ def _check(value, spec, where, name):
         if not np.isfinite(value) or value < low or value > high:
             raise bad(f"must lie between {low:g} and {high:g}")
         return float(value) if kind == "float" else int(value)
+    if kind == "frame":
+        if value in ("ed", "es"):
+            return value
+        if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+            raise bad(f"expected a frame number {low}-{high}, \"ed\" or \"es\"")
+        return int(value)
     if kind == "path":
         if not isinstance(value, str) or not value.strip():
             raise bad("expected a file name in quotes")

@@ -40,7 +40,9 @@ CONVENTIONS = {
     "sheet_normal": "fiber x sheet (right-handed triad)",
     "aha_segment": "1-17 after Cerqueira et al., Circulation 2002; 0 = not labelled; the segment angle is circumferential (same sense), sectors per parameters.segments.septal_sectors",
     "face_tags": {name: tag for tag, name in FACE_TAG_NAMES.items()},
-    "base": "the plane of the most basal slice, normal to the long axis",
+    "base": "normal to the long axis; summary.base.plane says where: 'slab' = the upper face of the basal slab (half a slice thickness above the basal contour, as disc summation counts it), 'slice' = the basal contour's plane",
+    "slice_shifts_mm": "per slice, the in-plane vector (world mm) added to its input points to move its epicardial centroid onto the fitted centreline; the input slice sat at minus this vector",
+    "slices": "summary.slices: one entry per input slice; a basal slice counts when at least half of its cavity's rim is wall (wall_coverage >= 0.5, SCMR post-processing guidelines, from memory)",
     "mass": "myocardial volume x 1.05 g/mL",
 }
 NODE_ORDER = ("VTK order: tetra corners 0-3, tetra10 adds the mid-edge nodes of edges (0,1) (1,2) (2,0) "

@@ -151,6 +151,8 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
             ["slice", "in-plane breath-hold shift (mm, x y z)", "length (mm)"],
             [[f"slice {k}", " ".join(f"{c:+.2f}" for c in v), float(np.linalg.norm(v))] for k, v in shifts.items()]))
 
+    parts.append(_slice_table(s))
+
     keys = list(STAGES) + [k for k in timings if k not in STAGES]
     trows = [[k, timings[k] if k in timings else "measured after this page was written; see manifest.json"]
              for k in keys]
@@ -233,6 +235,27 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     parts.append("<h3>Conventions</h3>" + _table(["item", "meaning"], conv))
     parts.append(f'<p class="caution">{_e(CAUTION)}</p></body></html>\n')
     return "\n".join(parts)
+
+
+def _slice_table(s: dict) -> str:
+    """The slices the build counted, by the 50% basal rule, and the frame and base used."""
+    rows = [[f"slice {r['id']}", "" if r.get("wall_coverage") is None else f"{100 * r['wall_coverage']:.0f}%",
+             "yes" if r.get("counted") else "no", r.get("reason", "")] for r in s.get("slices") or []]
+    if not rows:
+        return ""
+    html = "<h3>Slices counted</h3>" + _table(["slice", "wall around the cavity", "counted", "reason"], rows,
+                                              numeric_from=4)
+    notes = []
+    base = s.get("base") or {}
+    if base:
+        notes.append(f"Base plane: {_e(base.get('meaning', base.get('plane')))}, slice thickness "
+                     f"{_num(base.get('slice_thickness_mm'))} mm.")
+    if "frame" in s and len(s.get("frame_cavity_volumes_ml") or []) > 1:
+        vols = ", ".join(f"{v:.1f}" for v in s["frame_cavity_volumes_ml"])
+        notes.append(f"Frame {s['frame']} built ({_e(s.get('frame_reason', ''))}); cavity per frame (mL): {vols}.")
+    notes.append("A basal slice counts when at least half of its cavity's rim is wall (the usual rule of CMR "
+                 "volumetry); slices basal to the first counted one are dropped.")
+    return html + '<p class="muted">' + " ".join(notes) + "</p>"
 
 
 def _report_versions() -> list[list[str]]:
