@@ -13,8 +13,12 @@ from pathlib import Path
 
 import numpy as np
 
+from fibers import budget
 from fibers.config import FiberLaw, Landmarks, PoolSettings
 from fibers.errors import InputError
+from fibers.io.paths import checked_path
+
+MAX_CASE_BYTES = 1 << 20  # a case file is a few hundred bytes; a megabyte is surely another file
 
 # table -> key -> (kind, default, low, high, meaning). Kinds: float, int, bool, str, path,
 # point (three floats), choice:<a|b>, profile (list of [depth, angle]), labels (sub-table).
@@ -38,6 +42,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
+        "max_tets": ("int", 5_000_000, 1_000, 1_000_000_000, "refuse a mesh size whose estimated tetrahedron count exceeds this"),
     },
     "fibers": {
         "helix_endo": ("float", 60.0, -90.0, 90.0, "helix angle at the endocardium, degrees"),
@@ -76,22 +81,37 @@ class Case:
     law: FiberLaw
     pools: PoolSettings
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
+    max_tets: int = 5_000_000  # [mesh] max_tets: the mesh-size budget (fibers.budget)
 
 
 def read_case(path: str | Path) -> Case:
     """Read and check a case file; paths in it are taken relative to its folder."""
-    path = Path(path)
+    path = checked_path(path, "case file")
     if not path.is_file():
         raise InputError(f"{path}: case file not found")
-    raw = path.read_bytes()
+    if path.stat().st_size > MAX_CASE_BYTES:
+        raise InputError(f"{path.name} is {path.stat().st_size:,} bytes: far too large for a case file "
+                         f"(a few hundred bytes of TOML); check the file name")
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        raise InputError(f"{path}: cannot read the case file ({err.strerror or err})") from None
+    return parse_case(raw, base=path.parent, name=path.name, path=path)
+
+
+def parse_case(raw: bytes, *, base: Path = Path("."), name: str = "case", path=None) -> Case:
+    """Parse and check the bytes of a case file (see `read_case`); nothing is read from disk."""
     try:
         data = tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError:
-        raise InputError(f"{path.name}: not a UTF-8 text file; the case file must be TOML") from None
+        raise InputError(f"{name}: not a UTF-8 text file; the case file must be TOML") from None
     except tomllib.TOMLDecodeError as err:
-        raise InputError(f"{path.name}: not valid TOML ({err}); see the case-file format in the README") from None
-    return resolve_case(data, base=path.parent, name=path.name, path=path,
-                        sha256=hashlib.sha256(raw).hexdigest())
+        raise InputError(f"{name}: not valid TOML ({_short(str(err), 120)}); see the case-file format in the README") from None
+    except ValueError:  # an integer of thousands of digits (Python's conversion limit)
+        raise InputError(f"{name}: a number with thousands of digits; no case-file value needs more than a few") from None
+    except RecursionError:
+        raise InputError(f"{name}: tables or arrays nested hundreds deep; a case file needs at most two levels") from None
+    return resolve_case(data, base=base, name=name, path=path, sha256=hashlib.sha256(raw).hexdigest())
 
 
 def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path=None,
@@ -108,7 +128,7 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
         raise InputError(f"{name}: [input] needs contours = \"contours.csv\" or labelmap = \"seg.nii.gz\"")
     if inp["contours"] is not None and inp["labelmap"] is not None:
         raise InputError(f"{name}: [input] gives both contours and labelmap; keep one")
-    resolve = lambda p: None if p is None else (base / p).resolve()  # noqa: E731
+    resolve = lambda p: None if p is None else _input_path(base, p, name)  # noqa: E731
     lm = values["landmarks"]
     if (lm["rv_insertion_anterior"] is None) != (lm["rv_insertion_inferior"] is None):
         raise InputError(f"{name}: [landmarks] needs both rv_insertion_anterior and rv_insertion_inferior, or neither")
@@ -120,16 +140,35 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
     law = FiberLaw(fib["helix_endo"], fib["helix_epi"], fib["transverse_endo"], fib["transverse_epi"],
                    None if fib["helix_profile"] is None else tuple(tuple(r) for r in fib["helix_profile"]))
     pools = PoolSettings(**values["pools"])
+    budget.check_pools(pools, where=f"{name}: [pools]")
     return Case(path=path, sha256=sha256, contours=resolve(inp["contours"]),
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
-                law=law, pools=pools, values=values)
+                law=law, pools=pools, values=values, max_tets=values["mesh"]["max_tets"])
+
+
+def _input_path(base: Path, relative: str, name: str) -> Path:
+    path = checked_path(base / relative, f"{name}: [input] {_short(relative)}")
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError, ValueError):  # checked_path has refused loops and NUL bytes
+        raise InputError(f"{name}: [input] path '{_short(relative)}' cannot be resolved; check it") from None
+
+
+def _short(text, n: int = 40) -> str:
+    """A value for a message: printable, at most ``n`` characters, never a 5000-digit number."""
+    if isinstance(text, int) and not isinstance(text, bool) and abs(text) > 10**30:
+        return f"a {len(str(abs(text))) if abs(text).bit_length() < 14000 else 'many'}-digit number"
+    text = text if isinstance(text, str) else repr(text)
+    text = "".join(ch if ch.isprintable() else "?" for ch in text)
+    return text if len(text) <= n else text[: n - 3] + "..."
 
 
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
     for key, value in data.items():
         where = f"{prefix}.{key}" if prefix else key
+        key, where = _short(key), _short(where)
         if isinstance(value, dict):
             if where not in SCHEMA:
                 raise InputError(f"{name}: unknown table [{where}]{_suggest(where, list(SCHEMA))}")
@@ -145,7 +184,7 @@ def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
 
 def _check(value, spec, where, name):
     kind, _default, low, high, meaning = spec
-    bad = lambda what: InputError(f"{name}: {where} = {value!r}: {what} ({meaning})")  # noqa: E731
+    bad = lambda what: InputError(f"{name}: {where} = {_short(value)}: {what} ({meaning})")  # noqa: E731
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad("expected true or false")
@@ -155,7 +194,7 @@ def _check(value, spec, where, name):
             raise bad("expected a number")
         if kind == "int" and not isinstance(value, int):
             raise bad("expected a whole number")
-        if not np.isfinite(value) or value < low or value > high:
+        if (isinstance(value, float) and not np.isfinite(value)) or value < low or value > high:
             raise bad(f"must lie between {low:g} and {high:g}")
         return float(value) if kind == "float" else int(value)
     if kind == "path":
