@@ -9,6 +9,7 @@ import signal
 import sys
 import tempfile
 import traceback
+import warnings
 from contextlib import contextmanager
 from dataclasses import replace
 from pathlib import Path
@@ -150,6 +151,13 @@ def _logging() -> None:
         log.addHandler(handler)
     log.setLevel(logging.INFO)
     log.propagate = False
+    # a warning nobody caught (outside a build's own record) still reads "warning: ...",
+    # never Python's "file.py:67: RuntimeWarning: ..." with a source line
+    warnings.showwarning = _show_warning
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    log.warning("%s", message)
 
 
 def _dispatch(args) -> int:

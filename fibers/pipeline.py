@@ -21,6 +21,7 @@ from fibers import architecture, budget, coordinates, mesh as mesh_stage, pools 
 from fibers import segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
 from fibers.errors import InputError
+from fibers.io.folder import rearm_signals, signals_blocked
 from fibers.types import ENDO, EPI, BASE, RawContours
 
 log = logging.getLogger("fibers")
@@ -85,7 +86,14 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                          f"{plan['thinnest_wall_mm']:.1f} mm"):
             plan = budget.check_mesh_size(surf, case.mesh_size, getattr(case, "max_tets", budget.MAX_TETS))
         with clock.stage("mesh", lambda: f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"):
-            wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
+            # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
+            # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,
+            # a signal that came meanwhile then unwinds the build like Ctrl-C
+            with signals_blocked():
+                try:
+                    wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
+                finally:
+                    rearm_signals()
         with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None else "no landmarks"):
             septum = segments.locate_septum(wall, landmarks)
             aha = segments.label_cells(wall, septum)
@@ -191,13 +199,19 @@ def _build_locked(case, out: Path, *, report, include, force, inputs) -> dict:
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
-        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, mesh.msh, surfaces.vtp, pools/"):
-            outputs.write_all(tmp, result)
-        manifest = outputs.manifest(result, case, provenance)
-        if report:
-            from fibers import report as report_stage
-            with clock.stage("report", "report/index.html"):
-                report_stage.write_report(tmp, result=result, manifest=manifest, name=out.name)
+        with warnings.catch_warnings(record=True) as record:
+            warnings.simplefilter("always")
+            with clock.stage("outputs", "mesh.vtu, mesh.xdmf, mesh.msh, surfaces.vtp, pools/"):
+                outputs.write_all(tmp, result)
+            manifest = outputs.manifest(result, case, provenance)
+            if report:
+                from fibers import report as report_stage
+                with clock.stage("report", "report/index.html"):
+                    report_stage.write_report(tmp, result=result, manifest=manifest, name=out.name)
+        late = _distinct(str(w.message) for w in record)  # from writing files and drawing the report
+        for message in late:
+            log.warning("%s", message)
+        manifest["warnings"] = list(manifest.get("warnings", [])) + late
         clock.timings["total"] = round(time.perf_counter() - clock.start, 4)
         # every stage after meshing, the report excluded (DESIGN 6 compares it with meshing)
         clock.timings["after_mesh"] = round(sum(clock.timings.get(k, 0.0) for k in AFTER_MESH), 4)
@@ -213,6 +227,11 @@ def _build_locked(case, out: Path, *, report, include, force, inputs) -> dict:
     log.info("%-13s %7.2f s  wrote %s%s", "total", clock.timings["total"], out,
              f" (open {out / 'report' / 'index.html'})" if report else "")
     return manifest
+
+
+def _distinct(messages) -> list[str]:
+    """Messages in order, each once (a warning repeated per figure says nothing new)."""
+    return list(dict.fromkeys(messages))
 
 
 def _read_inputs(case):

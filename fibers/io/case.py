@@ -18,6 +18,7 @@ from fibers.config import FiberLaw, Landmarks, PoolSettings
 from fibers.errors import InputError
 from fibers.io.paths import checked_path
 
+MAX_COORDINATE_MM = 1e5  # 100 m: anything larger is not a scanner position in mm
 MAX_CASE_BYTES = 1 << 20  # a case file is a few hundred bytes; a megabyte is surely another file
 
 # table -> key -> (kind, default, low, high, meaning). Kinds: float, int, bool, str, path,
@@ -195,7 +196,8 @@ def _check(value, spec, where, name):
         if kind == "int" and not isinstance(value, int):
             raise bad("expected a whole number")
         if (isinstance(value, float) and not np.isfinite(value)) or value < low or value > high:
-            raise bad(f"must lie between {low:g} and {high:g}")
+            span = f"{low:g} and {high:g}" if kind == "float" else f"{low:,} and {high:,}"
+            raise bad(f"must lie between {span}")
         return float(value) if kind == "float" else int(value)
     if kind == "path":
         if not isinstance(value, str) or not value.strip():
@@ -209,8 +211,8 @@ def _check(value, spec, where, name):
     if kind == "point":
         if (not isinstance(value, list) or len(value) != 3
                 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
-                or not np.all(np.isfinite(value))):
-            raise bad("expected three numbers [x, y, z] in mm")
+                or not all(abs(v) <= MAX_COORDINATE_MM for v in value)):  # also refuses nan
+            raise bad(f"expected three numbers [x, y, z] in mm, each within {MAX_COORDINATE_MM:g} mm of the origin")
         return [float(v) for v in value]
     if kind == "profile":
         rows = value if isinstance(value, list) else None

@@ -55,6 +55,11 @@ def parse_contours(raw: bytes, name: str = "contours.csv") -> RawContours:
     """Parse the bytes of a contours CSV; ``name`` is used in messages. See `read_contours`."""
     if not raw.strip():
         raise InputError(f"{name} is empty: expected the header 'structure,slice,x,y,z' and one row per contour point")
+    if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):  # UTF-16 with its byte-order mark (some spreadsheet exports)
+        try:
+            raw = raw.decode("utf-16").encode("utf-8")
+        except UnicodeDecodeError:
+            raise InputError(f"{name}: starts like UTF-16 text but does not decode; save the contours as a plain UTF-8 CSV") from None
     if b"\x00" in raw:
         raise InputError(f"{name} looks like a binary file, not a CSV: export the contours as text with the header 'structure,slice,x,y,z'")
     try:
@@ -136,10 +141,13 @@ def _column(body, index, lines, name, label, integer=False):
         out = np.array(values, dtype=float)
     except ValueError:
         out = None
+    # Python reads "32_169" as 32169: a digit separator no CSV writer uses, more likely a typo
+    if out is not None and any("_" in v for v in values):
+        out = None
     if out is None:  # find the first bad cell only on the error path
         for ln, v in zip(lines, values):
             try:
-                float(v)
+                float(v.replace("_", "?"))
             except ValueError:
                 raise InputError(f"{name}, line {ln}: {label} = '{_short(v)}' is not a number") from None
     finite = np.isfinite(out)

@@ -238,7 +238,10 @@ def _alive(pid: int) -> bool:
 
 @contextmanager
 def signals_blocked():
-    """Defer SIGINT, SIGTERM and SIGHUP: a rename pair or a clean-up must not be cut in half."""
+    """Defer SIGINT, SIGTERM and SIGHUP: a rename pair or a clean-up must not be cut in half.
+
+    A signal that arrives meanwhile stays pending and is delivered when the block ends.
+    """
     try:
         old = signal.pthread_sigmask(signal.SIG_BLOCK, _BLOCKED)
     except (ValueError, OSError, AttributeError):  # not the main thread, or no such call
@@ -248,6 +251,20 @@ def signals_blocked():
         yield
     finally:
         signal.pthread_sigmask(signal.SIG_SETMASK, old)
+
+
+def rearm_signals() -> None:
+    """Re-install Python's handlers of SIGINT, SIGTERM and SIGHUP at the C level.
+
+    ``gmsh.initialize`` resets SIGTERM and SIGHUP to their default action (kill at once) behind
+    Python's back, so after meshing those signals would skip every clean-up; setting the
+    handlers Python still records puts them back.
+    """
+    try:
+        for sig in _BLOCKED:
+            signal.signal(sig, signal.getsignal(sig))
+    except (ValueError, TypeError):  # not the main thread, or a handler set outside Python
+        pass
 
 
 def remove(tmp: Path) -> None:
