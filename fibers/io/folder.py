@@ -6,7 +6,8 @@ every file is written. Around that:
 - **Ownership.** The manifest lists every file the build wrote (``files``, paths relative to
   the folder). An existing ``--out`` is replaced only when every file in it is listed there;
   otherwise the build is refused before any work, naming up to three foreign files, unless
-  ``force`` is given. A folder that holds one of the build's own inputs is never replaced, not
+  ``force`` is given. The page and figures that ``fibers report DIR`` re-draws later
+  (``report/index.html``, ``report/*.png``) count as ours too. A folder that holds one of the build's own inputs is never replaced, not
   even with ``force``: the inputs would be deleted by the very build that reads them, and keeping
   them while replacing everything else would mix a user's folder with ours.
 - **One build at a time.** A lock file beside ``--out`` (``flock``, released by the kernel
@@ -115,13 +116,19 @@ def check_out(out: Path, *, inputs=(), force: bool = False) -> None:
     if not present:
         return
     listed = listed_files(out)
-    foreign = [f for f in present if listed is None or f not in listed]
+    foreign = [f for f in present if listed is None or not (f in listed or _redrawn_report(f))]
     if foreign and not force:
         names = ", ".join(foreign[:SHOWN]) + (f" and {len(foreign) - SHOWN} more" if len(foreign) > SHOWN else "")
         what = ("is not a fibers output folder" if listed is None
                 else "holds files this tool did not write")
         raise InputError(f"--out {out} {what} ({names}); nothing was changed: choose another --out, move those "
                          f"files away, or give --force to replace the folder and delete them")
+
+
+def _redrawn_report(rel: str) -> bool:
+    """A file ``fibers report DIR`` writes after the build (its page and figures)."""
+    parts = rel.split("/")
+    return len(parts) == 2 and parts[0] == "report" and (parts[1] == "index.html" or parts[1].endswith(".png"))
 
 
 def _is_within(path: Path, folder: Path) -> bool:
