@@ -1,4 +1,4 @@
-"""Command line: a thin layer over the Python API (DESIGN.md section 3.3)."""
+"""Command line: a thin layer over the Python API."""
 
 from __future__ import annotations
 

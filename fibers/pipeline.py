@@ -213,7 +213,7 @@ def _build_locked(case, out: Path, *, report, include, force, inputs) -> dict:
             log.warning("%s", message)
         manifest["warnings"] = list(manifest.get("warnings", [])) + late
         clock.timings["total"] = round(time.perf_counter() - clock.start, 4)
-        # every stage after meshing, the report excluded (DESIGN 6 compares it with meshing)
+        # every stage after meshing, the report excluded (the speed targets compare it with meshing)
         clock.timings["after_mesh"] = round(sum(clock.timings.get(k, 0.0) for k in AFTER_MESH), 4)
         manifest["timings_s"] = dict(clock.timings)
         # every file this build wrote, so a later build knows what it may replace

@@ -1,4 +1,4 @@
-"""Reading the case file (DESIGN.md section 3.2): TOML, every key documented and range-checked.
+"""Reading the case file (see the README, "Case file"): TOML, every key documented and range-checked.
 
 An unknown key is refused with the nearest valid one suggested: it is nearly always a typo.
 """

@@ -1,4 +1,4 @@
-"""Reading and writing the contours CSV of DESIGN.md section 3.1.
+"""Reading and writing the contours CSV (header structure,slice,x,y,z; see the README, "Input").
 
 Columns are found by their header names, in any order; columns the tool does not use are
 ignored with a warning. A leading byte-order mark and any line ends (LF, CRLF, old Mac CR) are
@@ -170,7 +170,7 @@ def _column(body, index, lines, name, label, integer=False):
 
 
 def write_contours(path: str | Path, contours: RawContours) -> None:
-    """Write contours as CSV with the header of DESIGN.md section 3.1."""
+    """Write contours as CSV with the header structure,slice,x,y,z."""
     with open(path, "w", newline="") as fh:
         fh.write("structure,slice,x,y,z\n")
         for s, k, (x, y, z) in zip(contours.structure, contours.slice_id, contours.points):
