@@ -82,9 +82,10 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
             stack = stack_stage.check_stack(contours, align_slices=case.align_slices)
         with clock.stage("surfaces", lambda: f"fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm"):
             surf = surface_stage.fit_surfaces(stack)
-        with clock.stage("budget", lambda: f"about {plan['estimated_tets']:,} tetrahedra expected; thinnest wall "
-                         f"{plan['thinnest_wall_mm']:.1f} mm"):
-            plan = budget.check_mesh_size(surf, case.mesh_size, getattr(case, "max_tets", budget.MAX_TETS))
+        # the size budget, before gmsh (a fraction of a second; a progress line, not a timed stage)
+        plan = budget.check_mesh_size(surf, case.mesh_size, getattr(case, "max_tets", budget.MAX_TETS))
+        log.info("%-13s %7s    about %s tetrahedra expected; thinnest wall %.1f mm", "budget", "",
+                 f"{plan['estimated_tets']:,}", plan["thinnest_wall_mm"])
         with clock.stage("mesh", lambda: f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes"):
             # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
             # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,

@@ -186,3 +186,15 @@ def test_fuzz_case_reader(tmp_path):
             assert "\n" not in str(err)
             outcomes["refused"] += 1
     assert outcomes["read"] > 20 and outcomes["refused"] > 1000  # TOML is strict: most mutations are refused
+
+
+def test_one_slice_in_centimetres_is_named(good_csv):
+    from fibers import stack
+
+    c = parse_contours(good_csv.encode())
+    ids = np.unique(c.slice_id)
+    points = c.points.copy()
+    points[c.slice_id == ids[3]] /= 10.0  # that one slice exported in cm
+    odd = type(c)(structure=c.structure, slice_id=c.slice_id, points=points, line=c.line, source=c.source)
+    with pytest.raises(InputError, match=rf"slice {ids[3]}: .*looks like centimetres"):
+        stack.check_stack(odd, align_slices=True)
