@@ -1,13 +1,16 @@
-"""Command line: a thin layer over the Python API (DESIGN.md section 3.3)."""
+"""Command line: a thin layer over the Python API."""
 
 from __future__ import annotations
 
 import argparse
 import logging
 import os
+import signal
 import sys
 import tempfile
 import traceback
+import warnings
+from contextlib import contextmanager
 from dataclasses import replace
 from pathlib import Path
 
@@ -32,6 +35,9 @@ def _parser() -> argparse.ArgumentParser:
                        help="element order: 1 linear, 2 quadratic (10-node) tetrahedra")
         q.add_argument("--seed", type=int, help="seed of the sample-point pools")
         q.add_argument("--no-report", action="store_true", help="skip the report")
+        q.add_argument("--force", action="store_true",
+                       help="replace --out even when it holds files fibers did not write (they are deleted); "
+                            "a folder holding the build's own inputs is never replaced")
         q.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
 
     b = sub.add_parser("build", help="build a case file")
@@ -67,7 +73,8 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     _logging()
     try:
-        return _dispatch(args)
+        with _terminating_signals():
+            return _dispatch(args)
     except InputError as err:
         if args.debug:
             traceback.print_exc()
@@ -75,13 +82,68 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt:
         print("error: interrupted; nothing was written", file=sys.stderr)
-        return 130
+        return 128 + signal.SIGINT
+    except Terminated as err:
+        print(f"error: stopped by {signal.Signals(err.signum).name}; nothing was written", file=sys.stderr)
+        return 128 + err.signum
+    except MemoryError:
+        if args.debug:
+            traceback.print_exc()
+        print("error: out of memory; nothing was written. Use a larger --mesh-size or smaller [pools] counts",
+              file=sys.stderr)
+        return 2
+    except OSError as err:  # the file system said no (disk full, permissions changed mid-run)
+        if args.debug:
+            traceback.print_exc()
+        where = f" ({err.filename})" if err.filename else ""
+        print(f"error: {err.strerror or err}{where}; nothing was written. Free space or choose another --out",
+              file=sys.stderr)
+        return 2
     except Exception as err:  # a bug of ours: say so plainly, details on request
         if args.debug:
             traceback.print_exc()
         print(f"error: internal error ({type(err).__name__}: {err}); nothing was written. "
               f"Run again with --debug and report the traceback", file=sys.stderr)
         return 1
+
+
+class Terminated(BaseException):
+    """SIGTERM or SIGHUP arrived: unwind (temporary folders are removed on the way) and exit."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+@contextmanager
+def _terminating_signals():
+    """SIGTERM (timeout, batch schedulers) and SIGHUP (a closed terminal) unwind like Ctrl-C.
+
+    Their default action kills the process at once, leaving the temporary folder behind;
+    raised as an exception they pass through every clean-up on the way out.
+    """
+    def handler(signum, _frame):
+        raise Terminated(signum)
+
+    previous = {}
+    try:
+        for sig in (signal.SIGTERM, signal.SIGHUP):
+            previous[sig] = signal.signal(sig, handler)
+    except ValueError:  # not the main thread: leave the signals alone
+        pass
+    try:
+        yield
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+
+
+class _Levels(logging.Formatter):
+    """``warning: ...`` for warnings, ``fibers: ...`` for progress, so the two never look alike."""
+
+    def format(self, record):
+        prefix = "warning" if record.levelno >= logging.WARNING else "fibers"
+        return f"{prefix}: {record.getMessage()}"
 
 
 class _Stderr(logging.Handler):
@@ -97,10 +159,17 @@ class _Stderr(logging.Handler):
 def _logging() -> None:
     if not any(isinstance(h, _Stderr) for h in log.handlers):
         handler = _Stderr()
-        handler.setFormatter(logging.Formatter("fibers: %(message)s"))
+        handler.setFormatter(_Levels())
         log.addHandler(handler)
     log.setLevel(logging.INFO)
     log.propagate = False
+    # a warning nobody caught (outside a build's own record) still reads "warning: ...",
+    # never Python's "file.py:67: RuntimeWarning: ..." with a source line
+    warnings.showwarning = _show_warning
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    log.warning("%s", message)
 
 
 def _dispatch(args) -> int:
@@ -109,7 +178,7 @@ def _dispatch(args) -> int:
 
     if args.command == "build":
         case = _override(read_case(args.case), args)
-        pipeline.build(case, args.out, report=not args.no_report)
+        pipeline.build(case, args.out, report=not args.no_report, force=args.force)
         return 0
     if args.command == "demo":
         return _demo(args)
@@ -146,11 +215,22 @@ def _override(case, args):
         values["mesh"]["order"] = args.mesh_order
         case = replace(case, mesh_order=args.mesh_order)
     if args.seed is not None:
-        if args.seed < 0:
-            raise InputError(f"--seed {args.seed}: must be 0 or more")
+        if not 0 <= args.seed <= 2**63 - 1:
+            raise InputError("--seed: must lie between 0 and 2**63 - 1 (a whole number of at most 19 digits)")
         values["pools"]["seed"] = args.seed
         case = replace(case, pools=replace(case.pools, seed=args.seed))
     return replace(case, values=values)
+
+
+def _motion_writer(lv):
+    """The demo's motion files, written inside the build so that they count as its own."""
+    from fibers.demo.motion import write_demo_motion
+
+    def write(folder):
+        truth = write_demo_motion(folder, lv)
+        log.info("demo: motion.npz, %d frames of an isochoric cycle; closed-form segment strains "
+                 "in motion_truth.json", truth["motion"]["frames"])
+    return write
 
 
 def _demo(args) -> int:
@@ -181,13 +261,8 @@ def _demo(args) -> int:
         log.info("demo: synthetic left ventricle, %.0f mL cavity, %.0f mL wall (truth)",
                  lv.volumes_ml()["cavity_ml"], lv.volumes_ml()["myocardium_ml"])
         case = _override(case_io.read_case(tmp / "case.toml"), args)
-        pipeline.build(case, args.out, report=not args.no_report, include=include)
-    if args.motion:
-        from fibers.demo.motion import write_demo_motion
-
-        truth = write_demo_motion(args.out, lv)
-        log.info("demo: motion.npz, %d frames of an isochoric cycle; closed-form segment strains in "
-                 "motion_truth.json", truth["motion"]["frames"])
+        pipeline.build(case, args.out, report=not args.no_report, include=include, force=args.force,
+                       extra=_motion_writer(lv) if args.motion else None)
     return 0
 
 

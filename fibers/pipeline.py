@@ -10,7 +10,6 @@ from __future__ import annotations
 import logging
 import shutil
 import time
-import uuid
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
@@ -18,10 +17,11 @@ from pathlib import Path
 
 import numpy as np
 
-from fibers import architecture, coordinates, mesh as mesh_stage, pools as pool_stage
+from fibers import architecture, budget, coordinates, mesh as mesh_stage, pools as pool_stage
 from fibers import quadratic, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
 from fibers.errors import InputError
+from fibers.io.folder import rearm_signals, signals_blocked
 from fibers.types import ENDO, EPI, BASE, RawContours
 
 log = logging.getLogger("fibers")
@@ -91,8 +91,19 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                                             base=base)
         with clock.stage("surfaces", lambda: f"fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm"):
             surf = surface_stage.fit_surfaces(stack)
+        # the size budget, before gmsh (a fraction of a second; a progress line, not a timed stage)
+        plan = budget.check_mesh_size(surf, case.mesh_size, getattr(case, "max_tets", budget.MAX_TETS))
+        log.info("%-13s %7s    about %s tetrahedra expected; thinnest wall %.1f mm", "budget", "",
+                 f"{plan['estimated_tets']:,}", plan["thinnest_wall_mm"])
         with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
-            wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
+            # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
+            # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,
+            # a signal that came meanwhile then unwinds the build like Ctrl-C
+            with signals_blocked():
+                try:
+                    wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
+                finally:
+                    rearm_signals()
             quad = None
             if getattr(case, "mesh_order", 1) == 2:
                 # every later stage works on the 8 linear children of each 10-node element
@@ -113,8 +124,10 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         box = box or _contour_box(contours, case.pools.margin)
         with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
             pool_set = pool_stage.build_pools(wall, coords, case.law, septum, case.pools, box=box)
+            # a count of 0 means "no such pool": absent from the files and the report
+            pool_set = {k: v for k, v in pool_set.items() if getattr(case.pools, k, 1) > 0}
         caught = [str(w.message) for w in record]
-    for message in caught:
+    for message in list(stack.warnings) + caught:
         log.warning("%s", message)
     result = Result(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                     septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
@@ -122,6 +135,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                     quadratic=quad)
     result.summary = summarise(result)
     result.summary.update(_slice_facts(result.stack, contours, base, facts or {}))
+    result.summary["mesh_budget"] = plan  # the estimate beside the actual count, for the record
     return result
 
 
@@ -200,28 +214,43 @@ def _order_summary(result: Result) -> dict:
 
 
 def build(case, out: str | Path, *, report: bool = True, include: dict | None = None,
-          debug: bool = False) -> dict:
+          debug: bool = False, force: bool = False, extra=None) -> dict:
     """Read the inputs of a case, run every stage and write the output folder atomically.
 
-    ``include`` maps names inside the output folder to files copied in (the demo's inputs).
-    Returns the manifest.
+    ``include`` maps names inside the output folder to files copied in (the demo's inputs);
+    ``extra``, when given, is called with the temporary folder once the mesh files are written, to
+    add files derived from them (the demo's motion) that then count as the build's own.
+    An existing ``out`` is replaced only when every file in it is one an earlier build wrote
+    (the manifest's ``files``), or with ``force``; never when it holds the build's own inputs
+    (see `fibers.io.folder`). Returns the manifest.
     """
-    from fibers.io import outputs
+    from fibers.io import folder
 
-    out = Path(out)
-    _check_out(out)
+    out = folder.resolve_out(out)
+    folder.check_parent_writable(out)
+    own_inputs = [p for p in (case.path, case.contours, case.labelmap) if p is not None]
+    folder.check_out(out, inputs=own_inputs, force=force)
+    with folder.locked(out):
+        folder.check_out(out, inputs=own_inputs, force=force)  # again: it may have changed while we waited
+        return _build_locked(case, out, report=report, include=include, force=force, inputs=own_inputs,
+                             extra=extra)
+
+
+def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None) -> dict:
+    from fibers.io import folder, outputs
+
     clock = _Clock()
     with clock.stage("read", lambda: f"{len(contours.points):,} contour points from {contours.source}"):
         with warnings.catch_warnings(record=True) as record:
             warnings.simplefilter("always")
-            contours, landmarks, box, inputs, facts = _read_inputs(case)
+            contours, landmarks, box, provenance, facts = _read_inputs(case)
     notes = tuple(str(w.message) for w in record)
     for message in notes:
         log.warning("%s", message)
     result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes,
                  facts=facts)
 
-    tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
+    tmp = folder.partial_path(out)
     try:
         try:
             tmp.mkdir(parents=True)
@@ -231,29 +260,45 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
-        with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
-            outputs.write_all(tmp, result)
-            if case.labelmap is not None:   # the extracted contours, to edit and rebuild
-                from fibers.io import contours as contour_io
-                contour_io.write_contours(tmp / "contours.csv", result.contours)
-        manifest = outputs.manifest(result, case, inputs)
-        _record_resolved(manifest, case, facts)
-        if report:
-            from fibers import report as report_stage
-            with clock.stage("report", "report/index.html"):
-                report_stage.write_report(tmp, result=result, manifest=manifest, name=out.name)
+        with warnings.catch_warnings(record=True) as record:
+            warnings.simplefilter("always")
+            with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
+                outputs.write_all(tmp, result)
+                if case.labelmap is not None:   # the extracted contours, to edit and rebuild
+                    from fibers.io import contours as contour_io
+                    contour_io.write_contours(tmp / "contours.csv", result.contours)
+            if extra is not None:
+                extra(tmp)
+            manifest = outputs.manifest(result, case, provenance)
+            _record_resolved(manifest, case, facts)
+            if report:
+                from fibers import report as report_stage
+                with clock.stage("report", "report/index.html"):
+                    report_stage.write_report(tmp, result=result, manifest=manifest, name=out.name)
+        late = _distinct(str(w.message) for w in record)  # from writing files and drawing the report
+        for message in late:
+            log.warning("%s", message)
+        manifest["warnings"] = list(manifest.get("warnings", [])) + late
         clock.timings["total"] = round(time.perf_counter() - clock.start, 4)
-        # every stage after meshing, the report excluded (DESIGN 6 compares it with meshing)
+        # every stage after meshing, the report excluded (the speed targets compare it with meshing)
         clock.timings["after_mesh"] = round(sum(clock.timings.get(k, 0.0) for k in AFTER_MESH), 4)
         manifest["timings_s"] = dict(clock.timings)
+        # every file this build wrote, so a later build knows what it may replace
+        manifest["files"] = sorted(set(folder.files_in(tmp)) | {folder.MANIFEST})
         outputs.write_manifest(tmp, manifest)
-        _replace(tmp, out)
+        folder.check_out(out, inputs=inputs, force=force)  # a user may have added a file meanwhile
+        folder.replace(tmp, out)
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        folder.remove(tmp)
         raise
     log.info("%-13s %7.2f s  wrote %s%s", "total", clock.timings["total"], out,
              f" (open {out / 'report' / 'index.html'})" if report else "")
     return manifest
+
+
+def _distinct(messages) -> list[str]:
+    """Messages in order, each once (a warning repeated per figure says nothing new)."""
+    return list(dict.fromkeys(messages))
 
 
 def _read_inputs(case):
@@ -307,18 +352,15 @@ def _provenance(path: Path) -> dict:
     return {"path": str(path), "sha256": hashlib.sha256(Path(path).read_bytes()).hexdigest()}
 
 
-def _check_out(out: Path) -> None:
-    """Refuse, before any work, to replace a folder that is not an earlier build."""
-    if out.exists() and (not out.is_dir() or (any(out.iterdir()) and not (out / "manifest.json").exists())):
-        raise InputError(f"{out} exists and is not a fibers output folder; choose another --out or remove it")
+def _check_out(out: Path, *, inputs=(), force: bool = False) -> None:
+    """Refuse, before any work, to replace a folder whose files are not all ours (`fibers.io.folder`)."""
+    from fibers.io import folder
+
+    folder.check_out(folder.resolve_out(out), inputs=inputs, force=force)
 
 
 def _replace(tmp: Path, out: Path) -> None:
     """Move the finished folder into place, replacing an older build only at the very end."""
-    old = None
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
-        out.rename(old)
-    tmp.rename(out)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
+    from fibers.io import folder
+
+    folder.replace(tmp, out)

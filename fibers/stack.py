@@ -43,6 +43,28 @@ MAX_SHIFT_MM = 5.0           # a breath-hold shift larger than this is reported
 ROBUST_SCALE_MM = 1.0        # soft_l1 scale of the centreline fit: shifts beyond it count less
 
 
+def _refuse_odd_unit_slice(groups, typical: float, src: str) -> None:
+    """Name the one slice given in other units (cm, m) among slices in mm.
+
+    Such a slice is both far smaller (or larger) than the rest and away from the stack, its
+    position scaled with it; an apical slice is small too, but sits on the stack.
+    """
+    epi = {k: p for (s, k), (p, _lines) in groups.items() if s == "epi"}
+    centre = np.median([p.mean(0) for p in epi.values()], axis=0)
+    for (s, k), (p, lines) in groups.items():
+        if s != "epi":
+            continue
+        radius = float(np.linalg.norm(p - p.mean(0), axis=1).mean())
+        away = float(np.linalg.norm(p.mean(0) - centre)) > 2.0 * typical
+        if away and (radius < typical / 5 or radius > typical * 5):
+            unit = ("centimetres (multiply by 10)" if 0.05 * typical < radius < typical / 5 else
+                    "metres (multiply by 1000)" if radius <= 0.05 * typical else "not millimetres")
+            raise InputError(
+                f"{src}, line {lines[0]}, slice {k}: the epicardial radius is {radius:.3g}, against "
+                f"{typical:.3g} mm for the other slices, and the slice lies away from them; it looks "
+                f"like {unit}: give x, y, z in mm")
+
+
 def check_stack(contours: RawContours, *, align_slices: bool = True,
                 centreline: str = "straight", base: str = "slice") -> Stack:
     """Check, order and align a contour stack.
@@ -88,6 +110,7 @@ def check_stack(contours: RawContours, *, align_slices: bool = True,
         raise InputError(
             f"{src}: the typical epicardial radius is {typical:.3g}, not the 15-50 mm of a left "
             f"ventricle; the coordinates look like {guess}: give x, y, z in mm")
+    _refuse_odd_unit_slice(groups, typical, src)
 
     for k in ids:
         if ("epi", k) not in groups:

@@ -202,7 +202,7 @@ def closed_form_segments(cycle: IsochoricCycle, points: np.ndarray, tets: np.nda
 
 
 def write_demo_motion(folder, lv: SyntheticLV, **cycle_options) -> dict:
-    """Write ``motion.npz`` and ``motion_truth.json`` of the isochoric cycle into a finished build.
+    """Write ``motion.npz`` and ``motion_truth.json`` of the isochoric cycle into a build folder.
 
     The displacements are those of the closed-form map at the nodes of ``folder/mesh.vtu``;
     the truth file holds the cycle's parameters and the closed-form segment means (see
@@ -216,7 +216,7 @@ def write_demo_motion(folder, lv: SyntheticLV, **cycle_options) -> dict:
     from fibers.io.motion import read_build_mesh, write_motion
 
     folder = Path(folder)
-    mesh = read_build_mesh(folder)
+    mesh = read_build_mesh(folder, finished=(folder / "manifest.json").is_file())
     cycle = IsochoricCycle(lv, **cycle_options)
     write_motion(folder / "motion.npz", cycle.displacement(mesh.points), time_ms=cycle.time_ms,
                  checksum=mesh.checksum)

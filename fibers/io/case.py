@@ -1,4 +1,4 @@
-"""Reading the case file (DESIGN.md section 3.2): TOML, every key documented and range-checked.
+"""Reading the case file (see the README, "Case file"): TOML, every key documented and range-checked.
 
 An unknown key is refused with the nearest valid one suggested: it is nearly always a typo.
 """
@@ -13,8 +13,13 @@ from pathlib import Path
 
 import numpy as np
 
+from fibers import budget
 from fibers.config import FiberLaw, Landmarks, PoolSettings
 from fibers.errors import InputError
+from fibers.io.paths import checked_path
+
+MAX_COORDINATE_MM = 1e5  # 100 m: anything larger is not a scanner position in mm
+MAX_CASE_BYTES = 1 << 20  # a case file is a few hundred bytes; a megabyte is surely another file
 
 # table -> key -> (kind, default, low, high, meaning). Kinds: float, int, bool, str, path,
 # point (three floats), choice:<a|b>, profile (list of [depth, angle]), offsets (list of
@@ -47,6 +52,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
         "order": ("int", 1, 1, 2, "element order: 1 linear (4-node), 2 quadratic (10-node) tetrahedra"),
+        "max_tets": ("int", 5_000_000, 1_000, 1_000_000_000, "refuse a mesh size whose estimated tetrahedron count exceeds this"),
     },
     "fibers": {
         "preset": ("choice:none|bayer2012|streeter1969", "none", None, None,
@@ -109,22 +115,37 @@ class Case:
     centreline: str = "straight"
     base: str | None = None          # None: "slab" for a label map, "slice" for contours
     slice_thickness: float | None = None
+    max_tets: int = 5_000_000  # [mesh] max_tets: the mesh-size budget (fibers.budget)
 
 
 def read_case(path: str | Path) -> Case:
     """Read and check a case file; paths in it are taken relative to its folder."""
-    path = Path(path)
+    path = checked_path(path, "case file")
     if not path.is_file():
         raise InputError(f"{path}: case file not found")
-    raw = path.read_bytes()
+    if path.stat().st_size > MAX_CASE_BYTES:
+        raise InputError(f"{path.name} is {path.stat().st_size:,} bytes: far too large for a case file "
+                         f"(a few hundred bytes of TOML); check the file name")
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        raise InputError(f"{path}: cannot read the case file ({err.strerror or err})") from None
+    return parse_case(raw, base=path.parent, name=path.name, path=path)
+
+
+def parse_case(raw: bytes, *, base: Path = Path("."), name: str = "case", path=None) -> Case:
+    """Parse and check the bytes of a case file (see `read_case`); nothing is read from disk."""
     try:
         data = tomllib.loads(raw.decode("utf-8"))
     except UnicodeDecodeError:
-        raise InputError(f"{path.name}: not a UTF-8 text file; the case file must be TOML") from None
+        raise InputError(f"{name}: not a UTF-8 text file; the case file must be TOML") from None
     except tomllib.TOMLDecodeError as err:
-        raise InputError(f"{path.name}: not valid TOML ({err}); see the case-file format in the README") from None
-    return resolve_case(data, base=path.parent, name=path.name, path=path,
-                        sha256=hashlib.sha256(raw).hexdigest())
+        raise InputError(f"{name}: not valid TOML ({_short(str(err), 120)}); see the case-file format in the README") from None
+    except ValueError:  # an integer of thousands of digits (Python's conversion limit)
+        raise InputError(f"{name}: a number with thousands of digits; no case-file value needs more than a few") from None
+    except RecursionError:
+        raise InputError(f"{name}: tables or arrays nested hundreds deep; a case file needs at most two levels") from None
+    return resolve_case(data, base=base, name=name, path=path, sha256=hashlib.sha256(raw).hexdigest())
 
 
 def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path=None,
@@ -142,7 +163,7 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
         raise InputError(f"{name}: [input] needs contours = \"contours.csv\" or labelmap = \"seg.nii.gz\"")
     if inp["contours"] is not None and inp["labelmap"] is not None:
         raise InputError(f"{name}: [input] gives both contours and labelmap; keep one")
-    resolve = lambda p: None if p is None else (base / p).resolve()  # noqa: E731
+    resolve = lambda p: None if p is None else _input_path(base, p, name)  # noqa: E731
     lm = values["landmarks"]
     if (lm["rv_insertion_anterior"] is None) != (lm["rv_insertion_inferior"] is None):
         raise InputError(f"{name}: [landmarks] needs both rv_insertion_anterior and rv_insertion_inferior, or neither")
@@ -152,6 +173,7 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
         source="case file" if lm["rv_insertion_anterior"] is not None else "none")
     law = fiber_law(values["fibers"])
     pools = PoolSettings(**values["pools"])
+    budget.check_pools(pools, where=f"{name}: [pools]")
     return Case(path=path, sha256=sha256, contours=resolve(inp["contours"]),
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
@@ -160,7 +182,8 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 septal_sectors=values["segments"]["septal_sectors"],
                 mesh_order=values["mesh"]["order"],
                 centreline=values["geometry"]["centreline"], base=values["geometry"]["base"],
-                slice_thickness=values["geometry"]["slice_thickness"])
+                slice_thickness=values["geometry"]["slice_thickness"],
+                max_tets=values["mesh"]["max_tets"])
 
 
 def fiber_law(fib: dict) -> FiberLaw:
@@ -187,9 +210,27 @@ def _apply_preset(fib: dict) -> None:
     fib["preset_record"] = record
 
 
+def _input_path(base: Path, relative: str, name: str) -> Path:
+    path = checked_path(base / relative, f"{name}: [input] {_short(relative)}")
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError, ValueError):  # checked_path has refused loops and NUL bytes
+        raise InputError(f"{name}: [input] path '{_short(relative)}' cannot be resolved; check it") from None
+
+
+def _short(text, n: int = 40) -> str:
+    """A value for a message: printable, at most ``n`` characters, never a 5000-digit number."""
+    if isinstance(text, int) and not isinstance(text, bool) and abs(text) > 10**30:
+        return f"a {len(str(abs(text))) if abs(text).bit_length() < 14000 else 'many'}-digit number"
+    text = text if isinstance(text, str) else repr(text)
+    text = "".join(ch if ch.isprintable() else "?" for ch in text)
+    return text if len(text) <= n else text[: n - 3] + "..."
+
+
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
     for key, value in data.items():
         where = f"{prefix}.{key}" if prefix else key
+        key, where = _short(key), _short(where)
         if isinstance(value, dict):
             if where not in SCHEMA:
                 raise InputError(f"{name}: unknown table [{where}]{_suggest(where, list(SCHEMA))}")
@@ -209,7 +250,7 @@ def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
 
 def _check(value, spec, where, name):
     kind, _default, low, high, meaning = spec
-    bad = lambda what: InputError(f"{name}: {where} = {value!r}: {what} ({meaning})")  # noqa: E731
+    bad = lambda what: InputError(f"{name}: {where} = {_short(value)}: {what} ({meaning})")  # noqa: E731
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad("expected true or false")
@@ -219,8 +260,9 @@ def _check(value, spec, where, name):
             raise bad("expected a number")
         if kind == "int" and not isinstance(value, int):
             raise bad("expected a whole number")
-        if not np.isfinite(value) or value < low or value > high:
-            raise bad(f"must lie between {low:g} and {high:g}")
+        if (isinstance(value, float) and not np.isfinite(value)) or value < low or value > high:
+            span = f"{low:g} and {high:g}" if kind == "float" else f"{low:,} and {high:,}"
+            raise bad(f"must lie between {span}")
         return float(value) if kind == "float" else int(value)
     if kind == "frame":
         if value in ("ed", "es"):
@@ -240,8 +282,8 @@ def _check(value, spec, where, name):
     if kind == "point":
         if (not isinstance(value, list) or len(value) != 3
                 or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
-                or not np.all(np.isfinite(value))):
-            raise bad("expected three numbers [x, y, z] in mm")
+                or not all(abs(v) <= MAX_COORDINATE_MM for v in value)):  # also refuses nan
+            raise bad(f"expected three numbers [x, y, z] in mm, each within {MAX_COORDINATE_MM:g} mm of the origin")
         return [float(v) for v in value]
     if kind == "offsets":
         rows = value if isinstance(value, list) else None

@@ -61,8 +61,11 @@ class BuildMesh:
     manifest: dict
 
 
-def read_build_mesh(folder) -> BuildMesh:
+def read_build_mesh(folder, *, finished: bool = True) -> BuildMesh:
     """Read ``mesh.vtu`` and ``manifest.json`` of a build folder.
+
+    ``finished=False`` reads a build still being written (no manifest yet; the demo writes its
+    motion there so that the motion files count as the build's own).
 
     Raises
     ------
@@ -75,11 +78,11 @@ def read_build_mesh(folder) -> BuildMesh:
     from fibers.io.outputs import read_manifest
 
     folder = Path(folder)
-    if not (folder / "mesh.vtu").is_file() or not (folder / "manifest.json").is_file():
+    if not (folder / "mesh.vtu").is_file() or (finished and not (folder / "manifest.json").is_file()):
         raise InputError(f"{folder} is not a finished fibers build (no mesh.vtu or manifest.json); "
                          "give the --out folder of fibers build or fibers demo")
     try:
-        manifest = read_manifest(folder)
+        manifest = read_manifest(folder) if finished else {}
         mesh = meshio.read(folder / "mesh.vtu")
     except (OSError, ValueError, KeyError) as err:
         raise InputError(f"{folder}: cannot read mesh.vtu or manifest.json ({type(err).__name__}); "

@@ -14,9 +14,7 @@ import hashlib
 import json
 import logging
 import platform
-import shutil
 import time
-import uuid
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -210,10 +208,10 @@ def manifest(run: StrainRun, build_dir: Path, motion_path: Path, timings: dict) 
 
 def write_strain_folder(build_dir, motion_path, out, *, report: bool = True, fit_degree: int = 1) -> dict:
     """Analyse a motion on a build and write the whole strain folder atomically. Returns the summary."""
-    from fibers.pipeline import _check_out, _replace
+    from fibers.io import folder
 
     out, build_dir, motion_path = Path(out), Path(build_dir), Path(motion_path)
-    _check_out(out)
+    folder.check_out(folder.resolve_out(out), inputs=(build_dir / "mesh.vtu", motion_path))
     timings = {}
     t0 = time.perf_counter()
     run = analyse(build_dir, motion_path, fit_degree=fit_degree)
@@ -224,9 +222,7 @@ def write_strain_folder(build_dir, motion_path, out, *, report: bool = True, fit
     log.info("%-13s %7.2f s  %d frames on %s tetrahedra (%s input); whole wall peak strain_cc %.3f, strain_rr %.3f",
              "strain", timings["analyse"], len(run.motion.displacement), f"{len(run.mesh.tets):,}", run.motion.source,
              np.nanmin(s["strain_cc"][:, 0]), np.nanmax(s["strain_rr"][:, 0]))
-    tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
-    try:
-        tmp.mkdir(parents=True)
+    with folder.staged(out, inputs=(build_dir / "mesh.vtu", motion_path)) as tmp:
         t1 = time.perf_counter()
         write_segments_csv(tmp / "segments.csv", run.study, run.motion.time_ms)
         (tmp / "summary.json").write_text(json.dumps(run.summary, indent=2) + "\n")
@@ -241,10 +237,8 @@ def write_strain_folder(build_dir, motion_path, out, *, report: bool = True, fit
             timings["report"] = round(time.perf_counter() - t2, 4)
             log.info("%-13s %7.2f s  report/index.html", "report", timings["report"])
         timings["total"] = round(time.perf_counter() - t0, 4)
-        (tmp / "manifest.json").write_text(json.dumps(manifest(run, build_dir, motion_path, timings), indent=2) + "\n")
-        _replace(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+        record = manifest(run, build_dir, motion_path, timings)
+        record["files"] = folder.listing(tmp)
+        (tmp / "manifest.json").write_text(json.dumps(record, indent=2) + "\n")
     log.info("%-13s %7.2f s  wrote %s", "total", timings["total"], out)
     return run.summary
