@@ -352,7 +352,7 @@ def test_case_keys_of_this_issue():
                                                                                "slice", 6.0)
     assert pipeline.base_choice(resolve_case({"input": {"labelmap": "a.nii"}})) == "slab"
     assert pipeline.base_choice(resolve_case({"input": {"contours": "a.csv"}})) == "slice"
-    with pytest.raises(InputError, match=r"frame = 'first'"):
+    with pytest.raises(InputError, match=r"frame = first: expected a frame number"):
         resolve_case({"input": {"labelmap": "seg.nii.gz", "frame": "first"}})
     with pytest.raises(InputError, match="must be one of 'slab', 'slice'"):
         resolve_case({"input": {"labelmap": "seg.nii.gz"}, "geometry": {"base": "plane"}})
