@@ -435,8 +435,10 @@ def _connect(workers, memory, scheduler):
 
 
 def _dashboard(client) -> str | None:
-    try:
-        if "dashboard" not in client.scheduler_info().get("services", {}):
+    import importlib.util
+
+    try:  # the dashboard's pages need bokeh (pip install bokeh); without it there is none to show
+        if importlib.util.find_spec("bokeh") is None or "dashboard" not in client.scheduler_info().get("services", {}):
             return None
         return client.dashboard_link
     except Exception:  # no dashboard (bokeh missing) is no reason to stop
