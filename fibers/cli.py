@@ -191,7 +191,7 @@ def _cohort(args) -> int:
     options = cohort.Options(report=not args.no_report, mesh_size=args.mesh_size, seed=args.seed)
     memory = None if args.memory_per_worker is None else cohort.parse_memory(args.memory_per_worker)
     subjects = cohort.find_subjects(args.cases)
-    line = _CohortLine(args.workers or cohort.default_workers())
+    line = _CohortLine()
     try:
         rows = cohort.run_cohort(subjects, args.out, options=options, workers=args.workers,
                                  memory_per_worker=memory, scheduler=args.scheduler, on_progress=line)
@@ -211,8 +211,7 @@ def _cohort(args) -> int:
 class _CohortLine:
     """The cohort's progress: one line rewritten in place on a terminal, plain lines otherwise."""
 
-    def __init__(self, slots: int):
-        self.slots = slots
+    def __init__(self):
         self.live = sys.stderr.isatty()
         self.shown = None
         self.last = None
@@ -226,7 +225,7 @@ class _CohortLine:
                         + (f" ({r['error']})" if r.get("error") else ""))
         text = (f"fibers: cohort  {p.done} done, {p.failed} failed, {p.skipped} skipped, {p.running} running, "
                 f"{p.left} left; {_clock(p.elapsed)} elapsed")
-        eta = p.estimate(self.slots)
+        eta = p.estimate()
         if eta is not None and (p.left or p.running):
             text += f", about {_clock(eta)} left"
         if self.live:

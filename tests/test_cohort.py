@@ -30,7 +30,7 @@ def cases(tmp_path_factory):
 @pytest.fixture(scope="module")
 def first(cases, tmp_path_factory):
     out = tmp_path_factory.mktemp("cohort") / "run"
-    code = cli.main(["cohort", *map(str, cases), "--out", str(out), "--workers", "2", "--no-report"])
+    code = cli.main(["cohort", *map(str, cases), "--out", str(out), "--workers", "2"])
     return out, code
 
 
@@ -52,6 +52,7 @@ def test_three_ok_one_failed(first):
     assert not list(out.glob(".*partial*"))
     page = (out / "cohort.html").read_text()
     assert 'href="subject-001/report/index.html"' in page and "data:image/png;base64," in page
+    assert (out / "subject-001" / "report" / "index.html").is_file()
 
 
 def test_same_figures_and_bytes_as_a_single_build(first, cases, tmp_path):
@@ -76,7 +77,7 @@ def test_same_figures_and_bytes_as_a_single_build(first, cases, tmp_path):
 
 def test_rerun_skips_and_a_changed_case_rebuilds(first, cases):
     out, _ = first
-    assert cli.main(["cohort", *map(str, cases), "--out", str(out), "--workers", "2", "--no-report"]) == 1
+    assert cli.main(["cohort", *map(str, cases), "--out", str(out), "--workers", "2"]) == 1
     rows = _rows(out)
     assert [rows[f"subject-00{k}"]["status"] for k in (1, 2, 3)] == ["skipped"] * 3
     assert rows["subject-002"]["myocardial_volume_ml"] is not None  # figures carried over
@@ -88,7 +89,7 @@ def test_rerun_skips_and_a_changed_case_rebuilds(first, cases):
 
     # the same run on an existing cluster, by its address
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
-        code = cli.main(["cohort", *map(str, cases[:3]), "--out", str(out), "--no-report",
+        code = cli.main(["cohort", *map(str, cases[:3]), "--out", str(out),
                          "--scheduler", cluster.scheduler_address])
     assert code == 0
     rows = _rows(out)

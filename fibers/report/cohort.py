@@ -79,7 +79,7 @@ def write_cohort_page(folder, rows: list[dict]) -> Path:
     cols = figure_columns(built)
     flags = {key: outlier_mask(cols[key]) for key, _ in MAIN_FIGURES}
     png = _distributions_png(built, cols, flags) if built else None
-    text = _page(folder.name, rows, built, cols, flags, png)
+    text = _page(folder, rows, built, cols, flags, png)
     path = folder / "cohort.html"
     tmp = path.with_name(f".cohort.html.{uuid.uuid4().hex[:8]}")
     tmp.write_text(text, encoding="utf-8")
@@ -124,14 +124,15 @@ def _distributions_png(built, cols, flags) -> bytes:
     return buf.getvalue()
 
 
-def _report_link(row: dict) -> str:
+def _report_link(row: dict, folder: Path) -> str:
     name = _e(row["subject"])
-    if row.get("status") in ("ok", "skipped"):
+    if row.get("status") in ("ok", "skipped") and (folder / row["subject"] / "report" / "index.html").is_file():
         return f'<a href="{name}/report/index.html">{name}</a>'
     return name
 
 
-def _page(title, rows, built, cols, flags, png) -> str:
+def _page(folder: Path, rows, built, cols, flags, png) -> str:
+    title = folder.name
     counts = {s: sum(r.get("status") == s for r in rows) for s in ("ok", "skipped", "failed")}
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>fibers cohort: {_e(title)}"
              f"</title><style>{CSS}</style></head><body>",
@@ -151,7 +152,7 @@ def _page(title, rows, built, cols, flags, png) -> str:
     if flagged:
         parts.append("<table><thead><tr><th>subject</th><th>outside median ± 3 MAD on</th></tr></thead><tbody>")
         for i, what in flagged:
-            parts.append(f"<tr><th scope=\"row\">{_report_link(built[i])}</th><td>{_e(', '.join(what))}</td></tr>")
+            parts.append(f"<tr><th scope=\"row\">{_report_link(built[i], folder)}</th><td>{_e(', '.join(what))}</td></tr>")
         parts.append("</tbody></table>")
     else:
         parts.append("<p>No subject lies outside median ± 3 MAD on any main figure.</p>")
@@ -170,7 +171,7 @@ def _page(title, rows, built, cols, flags, png) -> str:
         status = _e(r.get("status", ""))
         if r.get("status") == "failed":
             status = f'<span class="warn">{status}</span>'
-        parts.append(f"<tr><th scope=\"row\">{_report_link(r)}</th><td>{status}</td>"
+        parts.append(f"<tr><th scope=\"row\">{_report_link(r, folder)}</th><td>{status}</td>"
                      f"<td class=\"num\">{_num(r.get('seconds'))}</td>{''.join(cells)}"
                      f"<td>{_e(r.get('error') or '')}</td></tr>")
     parts.append("</tbody></table></body></html>\n")
