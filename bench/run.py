@@ -4,7 +4,13 @@ For each mesh size the whole pipeline runs in a fresh subprocess (so its peak me
 own); the FEM rows compare our assembly with scikit-fem's and our multigrid solve with scipy's
 direct solver on the same mesh, and the pool rows time point location and pool sampling of 10^6
 points on the ~500k mesh. Ratios > 1 mean ours is faster; "after / mesh" is the time of every
-stage after meshing (report excluded) over the meshing time (target <= 1 at ~500k).
+stage after meshing (report excluded) over the meshing time (target <= 0.4 at ~500k).
+
+The cohort rows build 6 synthetic subjects of the default mesh size (``fibers demo --cohort``)
+twice: one after another, each a ``fibers build`` process as a shell loop would run them, and
+as one ``fibers cohort --workers 2``; the ratio is the serial time over the cohort's (target
+>= 1.6 on 2 cores). Reports are left out of both (``--no-report``): they cost the same in both.
+`bench/run.py cohort` runs the cohort rows alone.
 """
 
 from __future__ import annotations
@@ -54,9 +60,48 @@ def one(size: float, with_pools_bench: bool) -> dict:
     return row
 
 
+def cohort_rows(n: int = 6, workers: int = 2) -> dict:
+    """Seconds of n default-size subjects built one after another and as one cohort on Dask."""
+    import shutil
+    import tempfile
+    import time
+
+    from fibers.demo.cohort import write_cohort
+
+    tmp = Path(tempfile.mkdtemp(prefix="fibers-bench-cohort-"))
+    try:
+        cases = write_cohort(tmp / "cases", n, seed=0)[:n]  # the broken case is left out
+        fibers = [sys.executable, "-m", "fibers.cli"]
+        t0 = time.perf_counter()
+        for case in cases:
+            subprocess.run(fibers + ["build", str(case), "--out", str(tmp / "serial" / case.parent.name),
+                                     "--no-report"], check=True, capture_output=True)
+        serial = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        subprocess.run(fibers + ["cohort", *map(str, cases), "--out", str(tmp / "cohort"), "--workers", str(workers),
+                                 "--no-report"], check=True, capture_output=True)
+        parallel = time.perf_counter() - t0
+        tets = [json.loads((tmp / "cohort" / c.parent.name / "manifest.json").read_text())["summary"]["counts"]["tetrahedra"]
+                for c in cases]
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    return {"subjects": n, "workers": workers, "serial_s": serial, "cohort_s": parallel,
+            "ratio": serial / parallel, "tets_min": min(tets), "tets_max": max(tets)}
+
+
+def print_cohort(c: dict) -> None:
+    print(f"\nCohort throughput: {c['subjects']} subjects of {c['tets_min']:,}-{c['tets_max']:,} tetrahedra "
+          f"(ratio = serial / cohort, target >= 1.6)")
+    print(f"{'serial builds s':>16} {'cohort s':>9} {'workers':>8} {'ratio':>6}")
+    print(f"{c['serial_s']:16.1f} {c['cohort_s']:9.1f} {c['workers']:8d} {c['ratio']:6.2f}")
+
+
 def main() -> int:
     if len(sys.argv) == 4 and sys.argv[1] == "--one":
         print(json.dumps(one(float(sys.argv[2]), sys.argv[3] == "1"), default=float))
+        return 0
+    if len(sys.argv) == 2 and sys.argv[1] == "cohort":
+        print_cohort(cohort_rows())
         return 0
     rows = []
     for label, size in SIZES.items():
@@ -92,6 +137,9 @@ def main() -> int:
             print(f"{'step':<44} {'points':>9} {'seconds':>8} {'points/s':>10}")
             for p in r["pools"]:
                 print(f"{p['step']:<44} {p['points']:>9} {p['seconds']:8.2f} {p['points_per_s']:10.3g}")
+
+    print("bench: cohort of 6 default-size subjects, serial and on 2 workers ...", file=sys.stderr, flush=True)
+    print_cohort(cohort_rows())
     return 0
 
 

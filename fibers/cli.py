@@ -11,7 +11,6 @@ import tempfile
 import traceback
 import warnings
 from contextlib import contextmanager
-from dataclasses import replace
 from pathlib import Path
 
 from fibers.errors import InputError
@@ -56,6 +55,9 @@ def _parser() -> argparse.ArgumentParser:
     k.add_argument("--fit-degree", type=int, choices=(1, 2), default=1,
                    help="local fit of scattered samples: 1 affine (default), 2 quadratic")
     k.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
+    d.add_argument("--cohort", type=int, metavar="N",
+                   help="instead, write N varied synthetic subjects and one broken case into --out, for fibers cohort")
+    _cohort_parser(sub, build_options)
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
     r.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
@@ -181,13 +183,15 @@ def _dispatch(args) -> int:
         pipeline.build(case, args.out, report=not args.no_report, force=args.force)
         return 0
     if args.command == "demo":
-        return _demo(args)
+        return _demo_cohort(args) if args.cohort is not None else _demo(args)
     if args.command == "strain":
         from fibers.io.strainfiles import write_strain_folder
 
         write_strain_folder(args.folder, args.motion, args.out, report=not args.no_report,
                             fit_degree=args.fit_degree)
         return 0
+    if args.command == "cohort":
+        return _cohort(args)
     if args.command == "report":
         from fibers import report
 
@@ -205,21 +209,10 @@ def _dispatch(args) -> int:
 
 
 def _override(case, args):
-    values = {k: dict(v) for k, v in case.values.items()}
-    if args.mesh_size is not None:
-        if not 0.3 <= args.mesh_size <= 10.0:
-            raise InputError(f"--mesh-size {args.mesh_size:g}: must lie between 0.3 and 10 mm")
-        values["mesh"]["size"] = args.mesh_size
-        case = replace(case, mesh_size=args.mesh_size)
-    if getattr(args, "mesh_order", None) is not None:
-        values["mesh"]["order"] = args.mesh_order
-        case = replace(case, mesh_order=args.mesh_order)
-    if args.seed is not None:
-        if not 0 <= args.seed <= 2**63 - 1:
-            raise InputError("--seed: must lie between 0 and 2**63 - 1 (a whole number of at most 19 digits)")
-        values["pools"]["seed"] = args.seed
-        case = replace(case, pools=replace(case.pools, seed=args.seed))
-    return replace(case, values=values)
+    from fibers.io.case import with_overrides
+
+    return with_overrides(case, mesh_size=args.mesh_size, mesh_order=getattr(args, "mesh_order", None),
+                          seed=args.seed)
 
 
 def _motion_writer(lv):
@@ -263,6 +256,104 @@ def _demo(args) -> int:
         case = _override(case_io.read_case(tmp / "case.toml"), args)
         pipeline.build(case, args.out, report=not args.no_report, include=include, force=args.force,
                        extra=_motion_writer(lv) if args.motion else None)
+    return 0
+
+
+# ----------------------------------------------------------------------------- cohorts
+
+def _cohort_parser(sub, build_options) -> None:
+    c = sub.add_parser("cohort", help="build many case files on Dask into one folder, with one table")
+    c.add_argument("cases", nargs="+", type=Path, help="case files, or folders holding case.toml")
+    build_options(c)
+    c.add_argument("--workers", type=int, help="worker processes of the local cluster (default: the number of cores)")
+    c.add_argument("--memory-per-worker", help="memory limit of each local worker, e.g. 4GB (default: an equal share)")
+    c.add_argument("--scheduler", help="address of a running Dask scheduler (tcp://host:8786) instead of a local cluster")
+
+
+def _cohort(args) -> int:
+    from fibers import cohort
+
+    if args.workers is not None and args.workers < 1:
+        raise InputError(f"--workers {args.workers}: must be 1 or more")
+    if args.scheduler and (args.workers is not None or args.memory_per_worker is not None):
+        raise InputError("--scheduler submits to an existing cluster; --workers and --memory-per-worker "
+                         "are for the local one: give one or the other")
+    options = cohort.Options(report=not args.no_report, mesh_size=args.mesh_size, seed=args.seed)
+    memory = None if args.memory_per_worker is None else cohort.parse_memory(args.memory_per_worker)
+    subjects = cohort.find_subjects(args.cases)
+    line = _CohortLine()
+    try:
+        rows = cohort.run_cohort(subjects, args.out, options=options, workers=args.workers,
+                                 memory_per_worker=memory, scheduler=args.scheduler, on_progress=line)
+    except KeyboardInterrupt:
+        line.finish()
+        print(f"error: interrupted; finished subjects stay in {args.out} (see cohort.csv); "
+              f"run the same command again to go on", file=sys.stderr)
+        return 130
+    line.finish()
+    failed = [r for r in rows if r["status"] == "failed"]
+    log.info("cohort: %d ok, %d skipped, %d failed; wrote %s and %s", sum(r["status"] == "ok" for r in rows),
+             sum(r["status"] == "skipped" for r in rows), len(failed), args.out / "cohort.csv",
+             args.out / "cohort.html")
+    return 1 if failed else 0
+
+
+class _CohortLine:
+    """The cohort's progress: one line rewritten in place on a terminal, plain lines otherwise."""
+
+    def __init__(self):
+        self.live = sys.stderr.isatty()
+        self.shown = None
+        self.last = None
+
+    def __call__(self, p) -> None:
+        if p.last is not None and p.last is not self.last:
+            self.last = p.last
+            r = p.last
+            self._print(f"fibers: cohort  {r['subject']}: {r['status']}"
+                        + (f" in {r['seconds']:.1f} s" if r.get("seconds") else "")
+                        + (f" ({r['error']})" if r.get("error") else ""))
+        text = (f"fibers: cohort  {p.done} done, {p.failed} failed, {p.skipped} skipped, {p.running} running, "
+                f"{p.left} left; {_clock(p.elapsed)} elapsed")
+        eta = p.estimate()
+        if eta is not None and (p.left or p.running):
+            text += f", about {_clock(eta)} left"
+        if self.live:
+            sys.stderr.write("\r\033[K" + text)
+            sys.stderr.flush()
+            self.shown = text
+        elif (p.done, p.failed, p.skipped) != getattr(self, "_counts", None):
+            self._counts = (p.done, p.failed, p.skipped)
+            print(text, file=sys.stderr)
+
+    def _print(self, text: str) -> None:
+        if self.live and self.shown:
+            sys.stderr.write("\r\033[K")
+        print(text, file=sys.stderr)
+        if self.live and self.shown:
+            sys.stderr.write(self.shown)
+        sys.stderr.flush()
+
+    def finish(self) -> None:
+        if self.live and self.shown:
+            sys.stderr.write("\n")
+            self.shown = None
+
+
+def _clock(seconds: float) -> str:
+    m, s = divmod(int(round(seconds)), 60)
+    h, m = divmod(m, 60)
+    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
+
+
+def _demo_cohort(args) -> int:
+    from fibers.demo.cohort import write_cohort
+
+    if args.cohort < 1:
+        raise InputError(f"--cohort {args.cohort}: must be 1 or more")
+    cases = write_cohort(args.out, args.cohort, mesh_size=args.mesh_size or 1.5)
+    log.info("demo: wrote %d synthetic subjects and 1 broken case into %s; try: fibers cohort %s/*/ --out RESULTS",
+             len(cases) - 1, args.out, args.out)
     return 0
 
 

@@ -115,7 +115,7 @@ class CardiacCoordinates:
 
 
 def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
-            tol: float = 1e-10) -> CardiacCoordinates:
+            tol: float = 1e-6) -> CardiacCoordinates:
     """Solve for the cardiac coordinates and frames of a wall mesh.
 
     Parameters
@@ -127,7 +127,10 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         to the long axis and is projected onto the plane normal to it. Default
         ``mesh.axis.reference``.
     tol : float
-        Relative residual of the two Laplace solves.
+        Relative residual of the two Laplace solves. 1e-6 leaves an algebraic error of about
+        2e-6 in the coordinates (measured at 550k tetrahedra against a 1e-10 solve), two to
+        three orders below the P1 discretisation error at 1-2 mm meshes, for 40% fewer CG
+        iterations than 1e-10.
 
     Returns
     -------

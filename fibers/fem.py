@@ -85,16 +85,27 @@ def stiffness(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | Non
     """
     n = len(points)
     vol, grads = tet_gradients(points, tets) if grads is None or volumes is None else (volumes, grads)
-    local = np.matmul(grads, grads.transpose(0, 2, 1))
-    local *= vol[:, None, None]
+    # Only the six edges of each element are assembled (K is symmetric) and the diagonal is
+    # minus the row sum of the off-diagonal part (the shape-function gradients of an element
+    # sum to zero, so every row of K sums to zero exactly): 3 entries per element to sort
+    # instead of 16, about half the time of the full 4 x 4 COO assembly at 500k tetrahedra.
+    first, second = _EDGES
+    off = np.einsum("mkd,mkd->mk", grads[:, first], grads[:, second])
+    off *= vol[:, None]
     index_type = np.int32 if n < 2**31 - 1 else np.int64
     t = np.asarray(tets, dtype=index_type)
-    rows = np.broadcast_to(t[:, :, None], local.shape).ravel()
-    cols = np.broadcast_to(t[:, None, :], local.shape).ravel()
-    # One COO -> CSR conversion sums the duplicate entries in compiled code.
-    K = sp.coo_matrix((local.ravel(), (rows, cols)), shape=(n, n)).tocsr()
+    a, b = t[:, first].ravel(), t[:, second].ravel()
+    low, high = np.minimum(a, b), np.maximum(a, b)
+    w = off.ravel()
+    upper = sp.csr_matrix((w, (low, high)), shape=(n, n))  # duplicates summed in compiled code
+    diagonal = -(np.bincount(low, weights=w, minlength=n) + np.bincount(high, weights=w, minlength=n))
+    K = (upper + upper.T + sp.diags(diagonal, format="csr")).tocsr()
     K.sort_indices()
     return K
+
+
+# local vertex pairs of the six edges of a tetrahedron
+_EDGES = (np.array([0, 0, 0, 1, 1, 2]), np.array([1, 2, 3, 2, 3, 3]))
 
 
 def _amg_vcycle(A: sp.csr_matrix):

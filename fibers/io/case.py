@@ -337,3 +337,34 @@ def case_text(*, contours="contours.csv", landmarks: Landmarks | None = None, me
               "background = 100000", "endo = 10000", "epi = 10000", "base = 10000",
               f"seed = {seed}", 'sampler = "random"', "margin = 10.0", ""]
     return "\n".join(lines) + extra
+
+
+def with_overrides(case: Case, *, mesh_size: float | None = None, mesh_order: int | None = None,
+                   seed: int | None = None) -> Case:
+    """The case with the command line's overrides (``--mesh-size``, ``--mesh-order``, ``--seed``).
+
+    Checked like the case file's own keys; ``None`` keeps the case file's value. Used by
+    ``fibers build``, ``fibers demo`` and every subject of ``fibers cohort`` alike.
+    """
+    from dataclasses import replace
+
+    check_overrides(mesh_size=mesh_size, seed=seed)
+    values = {k: dict(v) for k, v in case.values.items()}
+    if mesh_size is not None:
+        values["mesh"]["size"] = mesh_size
+        case = replace(case, mesh_size=mesh_size)
+    if mesh_order is not None:
+        values["mesh"]["order"] = mesh_order
+        case = replace(case, mesh_order=mesh_order)
+    if seed is not None:
+        values["pools"]["seed"] = seed
+        case = replace(case, pools=replace(case.pools, seed=seed))
+    return replace(case, values=values)
+
+
+def check_overrides(*, mesh_size: float | None = None, seed: int | None = None) -> None:
+    """Refuse command-line overrides out of range, before any work."""
+    if mesh_size is not None and not 0.3 <= mesh_size <= 10.0:
+        raise InputError(f"--mesh-size {mesh_size:g}: must lie between 0.3 and 10 mm")
+    if seed is not None and not 0 <= seed <= 2**63 - 1:
+        raise InputError("--seed: must lie between 0 and 2**63 - 1 (a whole number of at most 19 digits)")
