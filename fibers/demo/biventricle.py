@@ -210,7 +210,7 @@ class SyntheticBiV:
     def _support_ends(self, z, width):
         """Angles (radians) where width(z, .) falls to zero at each end of the crescent."""
         lo, hi = self.span
-        tap = np.radians(self.taper) if width is self.outer_width else 0.0
+        tap = np.radians(self.taper) if width == self.outer_width else 0.0  # bound methods: ==, not is
         ends = []
         for start, inward in ((lo - tap, +1.0), (hi + tap, -1.0)):
             a, b = start, 0.5 * (lo + hi)  # a: zero width, b: positive width

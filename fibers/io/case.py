@@ -35,6 +35,10 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "geometry": {
         "align_slices": ("bool", True, None, None, "remove in-plane breath-hold shifts"),
+        "ventricles": ("choice:lv|biv", None, None, None,
+                       "'lv' or 'biv'; by default 'biv' when right-ventricular contours are given"),
+        "rv_wall_thickness": ("float", 3.5, 0.5, 15.0,
+                              "mm the right free wall is grown outward from rv_endo when rv_epi is absent"),
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
@@ -76,6 +80,8 @@ class Case:
     law: FiberLaw
     pools: PoolSettings
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
+    ventricles: str | None = None   # "lv", "biv" or None (decided by the input: fibers.biv)
+    rv_wall_thickness: float = 3.5  # mm
 
 
 def read_case(path: str | Path) -> Case:
@@ -124,7 +130,9 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
-                law=law, pools=pools, values=values)
+                law=law, pools=pools, values=values,
+                ventricles=values["geometry"]["ventricles"],
+                rv_wall_thickness=values["geometry"]["rv_wall_thickness"])
 
 
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:

@@ -12,7 +12,7 @@ from fibers.errors import InputError
 from fibers.types import RawContours
 
 COLUMNS = ("structure", "slice", "x", "y", "z")
-STRUCTURES = ("endo", "epi")
+STRUCTURES = ("endo", "epi", "rv_endo", "rv_epi")  # rv_*: both ventricles (fibers.biv)
 
 
 def read_contours(path: str | Path) -> RawContours:
@@ -66,7 +66,7 @@ def read_contours(path: str | Path) -> RawContours:
         k = int(np.argmax(bad))
         raise InputError(
             f"{name}, line {lines[k]}: unknown structure '{structure[k]}'; allowed are 'endo' "
-            f"(endocardium) and 'epi' (epicardium)")
+            f"(endocardium), 'epi' (epicardium), 'rv_endo' and 'rv_epi' (right ventricle)")
     slice_id = _column(body, col[1], lines, name, "slice", integer=True)
     points = np.column_stack([_column(body, col[k], lines, name, c) for k, c in zip(col[2:], "xyz")])
     return RawContours(structure=structure, slice_id=slice_id, points=points, line=lines, source=name)
