@@ -73,6 +73,12 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
     ``notes`` are warnings raised earlier (while reading the inputs) that belong in the result.
     """
     clock = clock or _Clock()
+    contours, right, route_notes = _split_ventricles(contours, case)
+    notes = tuple(notes) + route_notes
+    if right is not None:  # both ventricles: fibers.biv, its own stages
+        from fibers.biv import route
+
+        return route.run(contours, right, case, box=box, landmarks=landmarks, clock=clock, notes=notes)
     landmarks = landmarks if landmarks is not None else case.landmarks
     caught = []
     with warnings.catch_warnings(record=True) as record:
@@ -105,6 +111,20 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                     timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught)
     result.summary = summarise(result)
     return result
+
+
+def _split_ventricles(contours: RawContours, case):
+    """Left contours, the right ones when the biventricular route applies (else None), notes.
+
+    Without right-ventricular rows the contours come back as they are (the LV route unchanged).
+    """
+    from fibers.biv import inputs as biv_inputs
+
+    left, right = biv_inputs.split_contours(contours)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        route = biv_inputs.choose_route(getattr(case, "ventricles", None), right)
+    return left, (right if route == "biv" else None), tuple(str(w.message) for w in record)
 
 
 def _contour_box(contours: RawContours, margin: float) -> Box:
@@ -176,7 +196,12 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
             shutil.copyfile(src, tmp / name)
         with clock.stage("outputs", "mesh.vtu, mesh.xdmf, mesh.msh, surfaces.vtp, pools/"):
             outputs.write_all(tmp, result)
+            if getattr(result, "right", None) is not None:  # both ventricles: their extra fields
+                from fibers.biv import outputs as biv_outputs
+                biv_outputs.write_extra(tmp, result)
         manifest = outputs.manifest(result, case, inputs)
+        if getattr(result, "right", None) is not None:
+            biv_outputs.amend_manifest(manifest, result)
         if report:
             from fibers import report as report_stage
             with clock.stage("report", "report/index.html"):

@@ -84,7 +84,7 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
         ENDO: _stitch_all(endo_idx, [a for _, a in endo_rings]),
         EPI: _stitch_all(outer_idx, [a for _, a in outer_rings]),
     }
-    sheets = (_stitch_rows(septal_idx, rows_u), _stitch_rows(free_idx, rows_u))
+    sheets = _drop_shared(_stitch_rows(septal_idx, rows_u), _stitch_rows(free_idx, rows_u))
     rims = {"endo": endo_idx[-1], "epi": outer_idx[-1],
             "rv": np.concatenate([septal_idx[-1], free_idx[-1][::-1][1:-1]])}
     tri[BASE] = _base_triangles(nodes, rims, size)
@@ -199,6 +199,18 @@ def _right_sheets(right: RightSurfaces, size: float, nodes: _Nodes):
         free.append(f_idx)
         rows_u.append(u)
     return septal, free, rows_u
+
+
+def _drop_shared(septal: np.ndarray, free: np.ndarray):
+    """Remove the triangles both sheets have (all three nodes shared: the cavity pinched to no
+    width there) from both; the two sheets then join along that triangle's edges."""
+    def key(f):
+        return [tuple(r) for r in np.sort(f, axis=1)]
+    both = set(key(septal)) & set(key(free))
+    if not both:
+        return septal, free
+    keep = lambda f: np.array([k not in both for k in key(f)])  # noqa: E731  (a few rows near the tips)
+    return septal[keep(septal)], free[keep(free)]
 
 
 def _stitch_rows(index_rows, u_rows) -> np.ndarray:
