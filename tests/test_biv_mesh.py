@@ -3,29 +3,17 @@
 import numpy as np
 import pytest
 
-from fibers import stack as stack_stage, surfaces as surface_stage
 from fibers.biv import inputs, mesh as biv_mesh, surfaces as biv_surfaces
 from fibers.demo import biventricle
 from fibers.errors import InputError
 from fibers.io.case import resolve_case
 
-SIZE = 3.0  # mm: coarse, keeps the suite fast
-
-
-def _stages(contours):
-    lv_rows, right = inputs.split_contours(contours)
-    stack = stack_stage.check_stack(lv_rows)
-    lv = surface_stage.fit_surfaces(stack)
-    return stack, lv, right
-
+from biv_case import exact_case
 
 @pytest.fixture(scope="module")
 def exact():
-    shape = biventricle.exact_biventricle(seed=3)  # oblique frame
-    contours, _ = shape.sample_stack(spacing=8.0, point_spacing=1.5)
-    stack, lv, right = _stages(contours)
-    rs = biv_surfaces.fit_right(stack, lv, right)
-    return shape, stack, lv, right, rs, biv_mesh.build_mesh(lv, rs, size=SIZE)
+    shape, _, stack, lv, right, rs, wall = exact_case()  # oblique frame
+    return shape, stack, lv, right, rs, wall
 
 
 def test_volumes_match_the_analytic_shape(exact):
