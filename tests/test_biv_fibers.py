@@ -116,3 +116,15 @@ def test_bislerp_invariants():
     Rb = Rotation.from_rotvec(np.outer(np.full(50, b), [0, 0, 1])).as_matrix()
     got = Rotation.from_matrix(bc.bislerp(Ra, Rb, t)).as_rotvec()[:, 2]
     assert np.allclose(got, (1 - t) * a + t * b)
+
+
+def test_law_from_the_case_file_and_refusals():
+    from fibers.errors import InputError
+    from fibers.io.case import resolve_case
+
+    case = resolve_case({"input": {"contours": "c.csv"}, "biventricular": {"rv_helix_endo": 30.0}})
+    law = bc.BiVLaw(**case.biv_law)
+    assert law.rv_helix_endo == 30.0 and law.lv_helix_endo == 40.0
+    law.check()
+    with pytest.raises(InputError, match="at most 90"):
+        bc.BiVLaw(lv_helix_endo=60.0, lv_helix_epi=-60.0).check()

@@ -20,17 +20,29 @@ Frames. ``axis(u, v)`` is the orthonormal frame with ``e_long = u / |u|``, ``e_r
 the fiber by the sheet angle ``b``: the triad (fiber, sheet, sheet-normal) as the columns of a
 rotation. Then, at every node (and every cell):
 
-1. ``Q_lv = orient(axis(grad psi, -grad phi_lv), a_s(d), b_s(d))`` and
-   ``Q_rv = orient(axis(grad psi, grad phi_rv), a_s(d), b_s(d))`` with
-   ``a_s(d) = a_lv_endo (1 - d) - a_rv_endo d`` (and ``b_s`` alike); ``grad phi_rv`` points into
-   the right cavity, so in the right free wall the angle ``-a_rv_endo`` in that frame is
-   ``+a_rv_endo`` in the wall's own frame: right-handed at both endocardia.
+1. ``Q_lv = orient(axis(grad psi, -grad phi_lv), a_s(d))`` and
+   ``Q_rv = orient(axis(grad psi, grad phi_rv), a_s(d))`` with
+   ``a_s(d) = a_lv_endo (1 - d) - a_rv_endo d``; ``grad phi_rv`` points into the right cavity,
+   so in the right free wall the angle ``-a_rv_endo`` in that frame is ``+a_rv_endo`` in the
+   wall's own frame: right-handed at both endocardia.
 2. ``Q_endo = bislerp(Q_lv, Q_rv, d)``: across the septum the frame turns from the left side's to
    the right side's by the paper's quaternion interpolation.
-3. ``Q_epi = orient(axis(grad psi, grad phi_epi), a_w(e), b_w(e))`` with ``e = phi_epi`` and
-   ``a_w(e) = a_endo (1 - e) + a_epi e`` (``b_w`` alike), each ventricle's own angles, the two
-   laws blended by ``d`` where the ventricles meet.
-4. The triad is ``bislerp(Q_endo, Q_epi, e)``.
+3. ``Q_epi = orient(axis(grad psi, grad phi_epi), a_w(e))`` with ``e = phi_epi`` and
+   ``a_w(e) = a_endo (1 - e) + a_epi e``, each ventricle's own angles, the two laws blended by
+   ``d`` where the ventricles meet.
+4. The fiber is that of ``bislerp(Q_endo, Q_epi, e)``.
+5. The sheet is turned about the fiber from ``e_rad`` (of the local frame below) by
+   ``b = (1 - e) b_endo + e b_epi``, with ``b_endo = b_lv_endo (1 - d) - s b_rv_endo d`` and
+   ``b_epi`` the ventricles' epicardial values blended by ``d``; ``s = e_rad . grad phi_rv /
+   |grad phi_rv|`` is +1 on the septal side of the right cavity and -1 on its free wall (the
+   paper's sign turn of the right frame, made continuous around the insertions).
+
+Our choice where the paper turns the frames by the helix and the sheet angles together before
+interpolating (step 5 instead): with its defaults (a 90 degree change of both) the turn between
+the endocardial and epicardial frames passes 90 degrees in the outer third of the wall, where
+the interpolation, which cannot tell a fiber from its reverse, then takes the other way round
+and the fiber jumps. Turning by the helix alone keeps every compared pair within ``90 e``
+degrees.
 
 ``bislerp(A, B, t)`` is the spherical linear interpolation of unit quaternions, taking among the
 quaternions of ``B`` and of ``B`` turned by a half-turn about one of its own axes (the same
@@ -42,9 +54,8 @@ SIGGRAPH 1985), so with equal sheet angles the helix is
 ``a(e) = (1 - e) a_endo + e a_w(e) = a_endo + (a_epi - a_endo) e^2``: it leaves the endocardial
 value slowly and reaches the epicardial one at the epicardium. Interpolating toward the fixed
 epicardial angle instead would make it linear, but with the paper's defaults (a 90 degree
-change, and fibers as lines) the two ends are then equally near both ways round and the fiber
-can turn the wrong way; the construction above never compares frames more than ``90 e``
-degrees apart.
+change, and fibers as lines) the two ends are then equally near both ways round. Helix changes
+beyond 90 degrees (per wall or across the septum) are refused for that reason.
 
 The local frame written out (``e_rad``, ``e_long``, ``e_circ``) is the same construction with all
 angles 0, with ``e_rad`` turned to point from the endocardium to the epicardium in the free walls
@@ -70,6 +81,9 @@ from fibers.types import BASE, ENDO, EPI
 class BiVLaw:
     """Helix and sheet angles per ventricle, degrees.
 
+    Each helix change (endocardium to epicardium, and across the septum ``lv_helix_endo +
+    rv_helix_endo``) must stay within 90 degrees (see the module docstring).
+
     Defaults from Bayer et al., Ann Biomed Eng 2012 (from memory): helix +40 at the endocardium
     and -50 at the epicardium, sheet -65 and +25, the same for both ventricles.
     """
@@ -85,6 +99,22 @@ class BiVLaw:
 
     def as_dict(self) -> dict:
         return asdict(self)
+
+    def check(self) -> None:
+        """Refuse helix changes the quaternion interpolation cannot follow (over 90 degrees).
+
+        Raises
+        ------
+        InputError
+        """
+        turns = {"lv_helix_endo -> lv_helix_epi": self.lv_helix_epi - self.lv_helix_endo,
+                 "rv_helix_endo -> rv_helix_epi": self.rv_helix_epi - self.rv_helix_endo,
+                 "across the septum (lv_helix_endo + rv_helix_endo)": self.lv_helix_endo + self.rv_helix_endo}
+        for name, turn in turns.items():
+            if abs(turn) > 90.0:
+                raise InputError(
+                    f"[biventricular] helix change {name} is {abs(turn):g} degrees; the interpolation of "
+                    f"frames (fibers are lines) can follow at most 90: bring the angles closer")
 
 
 @dataclass(frozen=True)
@@ -212,45 +242,38 @@ def _frames_and_triads(gradient, phi_lv, phi_rv, phi_epi, psi, d, law: BiVLaw, a
     frame = {k: axis_frame(g_psi, v, long_fallback) for k, v in rad.items()}
 
     blend = lambda a, b: (1.0 - d) * a + d * b  # noqa: E731
-    a_s = np.radians(law.lv_helix_endo * (1.0 - d) - law.rv_helix_endo * d)
-    b_s = np.radians(law.lv_sheet_endo * (1.0 - d) - law.rv_sheet_endo * d)
-    # the wall's law, linear in transmural depth from each ventricle's endocardial to its
-    # epicardial value, the two ventricles' laws blended by d
     e = phi_epi
-    a_e = np.radians(blend(law.lv_helix_endo * (1 - e) + law.lv_helix_epi * e,
+    zero = np.zeros_like(d)
+    # fibers: the paper's two interpolations of frames turned by the helix angle
+    a_s = np.radians(law.lv_helix_endo * (1.0 - d) - law.rv_helix_endo * d)
+    a_w = np.radians(blend(law.lv_helix_endo * (1 - e) + law.lv_helix_epi * e,
                            law.rv_helix_endo * (1 - e) + law.rv_helix_epi * e))
-    b_e = np.radians(blend(law.lv_sheet_endo * (1 - e) + law.lv_sheet_epi * e,
-                           law.rv_sheet_endo * (1 - e) + law.rv_sheet_epi * e))
-    q_lv = orient(frame["lv"], a_s, b_s)
-    q_rv = orient(frame["rv"], a_s, b_s)
-    q_endo = bislerp(q_lv, q_rv, d)
-    q_epi = orient(frame["epi"], a_e, b_e)
-    triad = bislerp(q_endo, q_epi, phi_epi)
+    q_endo = bislerp(orient(frame["lv"], a_s, zero), orient(frame["rv"], a_s, zero), d)
+    fiber = bislerp(q_endo, orient(frame["epi"], a_w, zero), e)[:, :, 0]
 
     # the local frame: the same blend without rotation, e_rad turned endo -> epi (free walls) and
     # left -> right (septum), e_long apex -> base
-    zero = np.zeros_like(d)
     plain = bislerp(bislerp(orient(frame["lv"], zero, zero), orient(frame["rv"], zero, zero), d),
-                    orient(frame["epi"], zero, zero), phi_epi)
+                    orient(frame["epi"], zero, zero), e)
     e_circ, e_rad = plain[:, :, 0], plain[:, :, 1]
     e_long = np.cross(e_rad, e_circ)
-    flip_l = np.einsum("ij,ij->i", e_long, g_psi) < 0
-    e_long[flip_l] *= -1.0
-    outward = g_epi + g_d
-    flip_r = np.einsum("ij,ij->i", e_rad, outward) < 0
-    e_rad[flip_r] *= -1.0
+    e_long[np.einsum("ij,ij->i", e_long, g_psi) < 0] *= -1.0
+    e_rad[np.einsum("ij,ij->i", e_rad, g_epi + g_d) < 0] *= -1.0
     e_circ = np.cross(e_long, e_rad)
-    fiber, sheet = triad[:, :, 0], triad[:, :, 1]
+
+    # sheets: turned about the final fiber from e_rad by the sheet law (module docstring)
+    side = np.einsum("ij,ij->i", e_rad, _unit(g_rv, e_rad))  # +1 septal side of the RV, -1 free wall
+    b_endo = law.lv_sheet_endo * (1.0 - d) - side * law.rv_sheet_endo * d
+    beta = np.radians((1 - e) * b_endo + e * blend(law.lv_sheet_epi, law.rv_sheet_epi))
+    s0 = e_rad - np.einsum("ij,ij->i", e_rad, fiber)[:, None] * fiber
+    s0 = _unit(s0, _any_normal(fiber))
+    sheet = np.cos(beta)[:, None] * s0 + np.sin(beta)[:, None] * np.cross(fiber, s0)
     helix = np.degrees(np.arctan2(np.einsum("ij,ij->i", fiber, e_long), np.einsum("ij,ij->i", fiber, e_circ)))
     helix = np.where(helix > 90.0, helix - 180.0, np.where(helix <= -90.0, helix + 180.0, helix))
-    # the sheet's turn about the fiber, from the sheet of zero angle (e_rad made normal to the fiber)
-    s0 = e_rad - np.einsum("ij,ij->i", e_rad, fiber)[:, None] * fiber
-    s0 /= np.linalg.norm(s0, axis=1)[:, None]
-    sheet_angle = np.degrees(np.arctan2(np.einsum("ij,ij->i", np.cross(s0, sheet), fiber),
-                                        np.einsum("ij,ij->i", s0, sheet)))
+    sheet_angle = np.degrees(np.arctan2(np.sin(beta), np.cos(beta)))
     sheet_angle = np.where(sheet_angle > 90.0, sheet_angle - 180.0,
                            np.where(sheet_angle <= -90.0, sheet_angle + 180.0, sheet_angle))
-    return {"fiber": fiber, "sheet": sheet, "sheet_normal": triad[:, :, 2], "helix": helix,
+    return {"fiber": fiber, "sheet": sheet, "sheet_normal": np.cross(fiber, sheet), "helix": helix,
             "sheet_angle": sheet_angle, "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}
 
 

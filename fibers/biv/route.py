@@ -40,7 +40,8 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
         notes: tuple[str, ...] = ()) -> BiVResult:
     """Run every stage of the biventricular route on left contours and right contours."""
     clock = clock or _Clock()
-    law = biv_coords.BiVLaw()
+    law = biv_coords.BiVLaw(**getattr(case, "biv_law", {}))
+    law.check()
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         with clock.stage("stack", lambda: f"{len(stack.slices)} slices, base to apex"):
@@ -72,6 +73,8 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
                        right=rs, fields=fields, rv_region=rv_region, law=law)
     result.summary = summarise(result)
     result.summary["biventricular"] = biv_summary(result)
+    # the resolved biventricular parameters (left out of "parameters" unless the case gave them)
+    result.summary["biventricular"]["rv_wall_thickness_parameter_mm"] = float(case.rv_wall_thickness)
     return result
 
 

@@ -50,6 +50,12 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "transverse_epi": ("float", 0.0, -90.0, 90.0, "transverse angle at the epicardium, degrees"),
         "helix_profile": ("profile", None, None, None, "[[depth, angle], ...] replacing the linear helix law"),
     },
+    "biventricular": {  # fibers.biv: the rule-based law of Bayer et al. 2012 (defaults from memory)
+        **{f"{v}_{k}_{w}": ("float", d, -90.0, 90.0, f"{'left' if v == 'lv' else 'right'} ventricle's {k} angle at the "
+                            f"{'endocardium' if w == 'endo' else 'epicardium'}, degrees (both ventricles only)")
+           for v in ("lv", "rv") for k, w, d in (("helix", "endo", 40.0), ("helix", "epi", -50.0),
+                                                  ("sheet", "endo", -65.0), ("sheet", "epi", 25.0))},
+    },
     "pools": {
         "myocardium": ("int", 100_000, 0, 20_000_000, "wall points"),
         "cavity": ("int", 20_000, 0, 20_000_000, "cavity points"),
@@ -82,6 +88,7 @@ class Case:
     values: dict = field(default_factory=dict)  # the resolved tables, for the manifest
     ventricles: str | None = None   # "lv", "biv" or None (decided by the input: fibers.biv)
     rv_wall_thickness: float = 3.5  # mm
+    biv_law: dict = field(default_factory=dict)  # [biventricular] angles, degrees
 
 
 def read_case(path: str | Path) -> Case:
@@ -126,13 +133,30 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
     law = FiberLaw(fib["helix_endo"], fib["helix_epi"], fib["transverse_endo"], fib["transverse_epi"],
                    None if fib["helix_profile"] is None else tuple(tuple(r) for r in fib["helix_profile"]))
     pools = PoolSettings(**values["pools"])
+    biv = {"ventricles": values["geometry"]["ventricles"],
+           "rv_wall_thickness": values["geometry"]["rv_wall_thickness"],
+           "biv_law": dict(values["biventricular"])}
+    _drop_untouched_biv_keys(values, data)
     return Case(path=path, sha256=sha256, contours=resolve(inp["contours"]),
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
                 align_slices=values["geometry"]["align_slices"], mesh_size=values["mesh"]["size"],
-                law=law, pools=pools, values=values,
-                ventricles=values["geometry"]["ventricles"],
-                rv_wall_thickness=values["geometry"]["rv_wall_thickness"])
+                law=law, pools=pools, values=values, **biv)
+
+
+# case keys of both ventricles only (fibers.biv): left out of the resolved parameters unless
+# given, so a left-ventricular build's manifest and report stay as they were
+_BIV_ONLY = {"geometry": ("ventricles", "rv_wall_thickness"), "biventricular": tuple(SCHEMA["biventricular"])}
+
+
+def _drop_untouched_biv_keys(values: dict, data: dict) -> None:
+    for table, keys in _BIV_ONLY.items():
+        given = data.get(table, {}) if isinstance(data.get(table), dict) else {}
+        for key in keys:
+            if key not in given:
+                values[table].pop(key, None)
+    if not values["biventricular"]:
+        del values["biventricular"]
 
 
 def _walk(data: dict, prefix: str, values: dict, name: str) -> None:
