@@ -169,7 +169,12 @@ def _right_sheets(right: RightSurfaces, size: float, nodes: _Nodes):
     half = np.full_like(z_f, 0.5)
     t1, t2 = right.span_at(z_f)
     mid = right.local_points(z_f, 0.5 * (t1 + t2), right.cavity_width_u(z_f, half))
-    arc = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(mid, axis=0), axis=1))])
+    septal_mid = right.local_points(z_f, 0.5 * (t1 + t2), np.zeros_like(z_f))
+    # rows no farther apart than the target on either sheet: near the cavity's apical end the
+    # free wall runs nearly across the axis and the septum along it
+    step = np.maximum(np.linalg.norm(np.diff(mid, axis=0), axis=1),
+                      np.linalg.norm(np.diff(septal_mid, axis=0), axis=1))
+    arc = np.concatenate([[0.0], np.cumsum(step)])
     n_rows = max(2, int(np.ceil(arc[-1] / (ROW * size))))
     z_rows = np.interp(np.linspace(0.0, arc[-1], n_rows + 1), arc, z_f)
     z_rows[0], z_rows[-1] = right.bottom, 0.0
