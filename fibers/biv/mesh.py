@@ -162,48 +162,55 @@ def _outer_rings(lv: Surfaces, right: RightSurfaces, size: float):
 def _right_sheets(right: RightSurfaces, size: float, nodes: _Nodes):
     """Node rows of the septal and free-wall sheets, from the cavity's apical end to the base.
 
+    Row ``j`` lies at a fraction ``j / n`` of each sheet's own meridian arc (measured
+    mid-crescent): near the cavity's apical end the free wall runs nearly across the axis while
+    the septum runs along it, so equal heights would crowd one sheet's rows. A free-wall row
+    rises from the septal row's height at the insertions (where the two share their end nodes)
+    to its own height mid-crescent.
+
     Returns the septal and free-wall index rows (lists of (n_j,) arrays; the first row and both
     ends of every row are shared) and each row's fractions u (n_j,) between the insertions.
     """
-    z_f = np.linspace(right.bottom, 0.0, 401)
-    half = np.full_like(z_f, 0.5)
+    z_f = np.linspace(right.bottom, 0.0, 801)
     t1, t2 = right.span_at(z_f)
-    mid = right.local_points(z_f, 0.5 * (t1 + t2), right.cavity_width_u(z_f, half))
-    septal_mid = right.local_points(z_f, 0.5 * (t1 + t2), np.zeros_like(z_f))
-    # rows no farther apart than the target on either sheet: near the cavity's apical end the
-    # free wall runs nearly across the axis and the septum along it
-    step = np.maximum(np.linalg.norm(np.diff(mid, axis=0), axis=1),
-                      np.linalg.norm(np.diff(septal_mid, axis=0), axis=1))
-    arc = np.concatenate([[0.0], np.cumsum(step)])
-    n_rows = max(2, int(np.ceil(arc[-1] / (ROW * size))))
-    z_rows = np.interp(np.linspace(0.0, arc[-1], n_rows + 1), arc, z_f)
-    z_rows[0], z_rows[-1] = right.bottom, 0.0
+    mid_t = 0.5 * (t1 + t2)
+    free_mid = right.local_points(z_f, mid_t, right.cavity_width_u(z_f, np.full_like(z_f, 0.5)))
+    septal_mid = right.local_points(z_f, mid_t, np.zeros_like(z_f))
+    arcs = [np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(c, axis=0), axis=1))])
+            for c in (septal_mid, free_mid)]
+    n_rows = max(2, int(np.ceil(max(a[-1] for a in arcs) / (ROW * size))))
+    level = np.linspace(0.0, 1.0, n_rows + 1)
+    z_sept, z_free = (np.interp(level * a[-1], a, z_f) for a in arcs)
+    z_sept[[0, -1]] = z_free[[0, -1]] = right.bottom, 0.0
     u_f = np.linspace(0.0, 1.0, 257)
     septal, free, rows_u = [], [], []
-    for j, z in enumerate(z_rows):
-        a, b = right.span_at(np.array([z]))
-        zz = np.full_like(u_f, z)
-        theta_f = a[0] + u_f * (b[0] - a[0])
-        w_f = right.cavity_width_u(zz, u_f) if j > 0 else np.zeros_like(u_f)
-        curve = right.local_points(zz, theta_f, w_f)
+    for j in range(n_rows + 1):
+        curve = _free_row(right, z_sept[j], z_free[j], u_f, flat=j == 0)
         s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(curve, axis=0), axis=1))])
         n = max(2, int(round(s[-1] / size)))
         u = np.interp(np.linspace(0.0, s[-1], n + 1), s, u_f)
-        theta = a[0] + u * (b[0] - a[0])
-        zu = np.full_like(u, z)
-        w = right.cavity_width_u(zu, u) if j > 0 else np.zeros_like(u)
-        w[[0, -1]] = 0.0
-        s_pts = right.local_points(zu, theta, np.zeros_like(u))
-        s_idx = nodes.add(s_pts)
+        u[[0, -1]] = 0.0, 1.0
+        a, b = right.span_at(np.array([z_sept[j]]))
+        zs = np.full_like(u, z_sept[j])
+        s_idx = nodes.add(right.local_points(zs, a[0] + u * (b[0] - a[0]), np.zeros_like(u)))
         if j == 0:
             f_idx = s_idx  # the cavity's apical end: both sheets meet along this row
         else:
-            inner = nodes.add(right.local_points(zu[1:-1], theta[1:-1], w[1:-1]))
+            inner = nodes.add(_free_row(right, z_sept[j], z_free[j], u[1:-1]))
             f_idx = np.concatenate([s_idx[:1], inner, s_idx[-1:]])
         septal.append(s_idx)
         free.append(f_idx)
         rows_u.append(u)
     return septal, free, rows_u
+
+
+def _free_row(right: RightSurfaces, z_sept: float, z_free: float, u: np.ndarray, *, flat: bool = False):
+    """Local points (K, 3) of a free-wall row at fractions u: at height ``z_sept`` at the
+    insertions rising to ``z_free`` mid-crescent, the cavity width beyond the left epicardium."""
+    z = z_sept + (z_free - z_sept) * np.sin(np.pi * u)
+    a, b = right.span_at(z)
+    w = np.zeros_like(u) if flat else right.cavity_width_u(z, u)
+    return right.local_points(z, a + u * (b - a), w)
 
 
 def _drop_shared(septal: np.ndarray, free: np.ndarray):
