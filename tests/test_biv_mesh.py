@@ -8,7 +8,7 @@ from fibers.demo import biventricle
 from fibers.errors import InputError
 from fibers.io.case import resolve_case
 
-from biv_case import exact_case
+from biv_case import SIZE, exact_case
 
 @pytest.fixture(scope="module")
 def exact():
@@ -104,3 +104,13 @@ def test_case_keys():
     assert case.ventricles == "biv" and case.rv_wall_thickness == 4.0
     with pytest.raises(InputError, match="ventricles"):
         resolve_case({"input": {"contours": "c.csv"}, "geometry": {"ventricles": "both"}})
+
+
+def test_quality_like_the_left_ventricle_alone(exact):
+    # the radius-ratio statistics of the same mesher on the left wall alone are the yardstick
+    from fibers import mesh as lv_mesh
+
+    shape, stack, lv, right, rs, wall = exact
+    alone = lv_mesh.build_mesh(lv, size=SIZE).quality
+    assert wall.quality["radius_ratio_mean"] >= 0.97 * alone["radius_ratio_mean"]
+    assert wall.quality["radius_ratio_p01"] >= 0.95 * alone["radius_ratio_p01"]

@@ -250,6 +250,10 @@ def helix_law(manifest: dict, depth: np.ndarray) -> np.ndarray:
     """The prescribed helix angle (degrees) at depth, from the manifest's parameters."""
     fib = (manifest.get("parameters") or {}).get("fibers") or {}
     d = np.clip(np.asarray(depth, float), 0.0, 1.0)
+    biv = (manifest.get("summary") or {}).get("biventricular")
+    if biv:  # both ventricles (fibers.biv.coordinates): the left free wall's law
+        law = biv["fiber_law_deg"]
+        return law["lv_helix_endo"] + (law["lv_helix_epi"] - law["lv_helix_endo"]) * d * d
     profile = fib.get("helix_profile")
     if profile:
         table = np.asarray(profile, float)
