@@ -19,7 +19,9 @@ outer width as a function of the angle. Between slices both are joined by monoto
 basal right-ventricular slice they are held up to the base plane. Below the most apical one the
 cavity closes like a half-ellipse, ``w = w_last sqrt((z - z_b) / (z_last - z_b))``, at ``z_b``
 half-way to the next slice that shows no right cavity (half a slice spacing when none does);
-the outer width closes the same way one wall thickness further down.
+the outer width closes one wall thickness further down with zero slope at both ends
+(``wo_last sin^2(pi/2 f)``, f the fraction of the way up), so the outer surface meets the left
+epicardium without a crease; it is kept at least ``MIN_WALL_MM`` beyond the cavity.
 
 Without ``rv_epi`` the outer surface is the free wall grown outward by ``rv_wall_thickness``:
 the set of points within that distance of the free-wall curve on each slice (a dilation, so the
@@ -96,7 +98,7 @@ class RightSurfaces:
         return self.bottom - self.thickness
 
     # -- along the axis ------------------------------------------------------------------------
-    def _along(self, values: np.ndarray, z: np.ndarray, closes_at: float) -> np.ndarray:
+    def _along(self, values: np.ndarray, z: np.ndarray, closes_at: float, *, smooth: bool = False) -> np.ndarray:
         """Slice values (S, C) at heights z (K,): PCHIP between slices, held above, closing
         like a half-ellipse below the last slice down to ``closes_at``."""
         z = np.asarray(z, float)
@@ -106,7 +108,10 @@ class RightSurfaces:
             inside = PchipInterpolator(self.heights, values, axis=0, extrapolate=False)(zc)
         else:
             inside = np.broadcast_to(values[0], (len(z), values.shape[1])).copy()
-        fall = np.sqrt(np.clip((z - closes_at) / max(last - closes_at, 1e-9), 0.0, 1.0))
+        f = np.clip((z - closes_at) / max(last - closes_at, 1e-9), 0.0, 1.0)
+        # the cavity closes like a half-ellipse; the outer surface with zero slope at both ends
+        # (a squared sine), meeting the left epicardium without a crease
+        fall = np.sin(0.5 * np.pi * f) ** 2 if smooth else np.sqrt(f)
         return np.where((z < last)[:, None], values[0][None, :] * fall[:, None], inside)
 
     def span_at(self, z) -> tuple[np.ndarray, np.ndarray]:
@@ -142,7 +147,7 @@ class RightSurfaces:
         """Outer width (K,) mm at heights z and angles theta, at least the cavity's plus
         ``MIN_WALL_MM`` where there is a cavity."""
         z, theta = np.broadcast_arrays(np.asarray(z, float).ravel(), np.asarray(theta, float).ravel())
-        rows = self._along(self.outer, z, self.outer_bottom)
+        rows = self._along(self.outer, z, self.outer_bottom, smooth=True)
         t = np.mod(theta + np.pi, 2 * np.pi) - np.pi
         wo = _row_interp(t, self.theta, rows, periodic=True)
         w = self.cavity_width(z, theta)
