@@ -128,3 +128,19 @@ def test_law_from_the_case_file_and_refusals():
     law.check()
     with pytest.raises(InputError, match="at most 90"):
         bc.BiVLaw(lv_helix_endo=60.0, lv_helix_epi=-60.0).check()
+
+
+def test_septal_helix_runs_smoothly_from_left_to_right(built):
+    wall, (coords, arch, fields), _ = built
+    law = bc.BiVLaw()
+    local = wall.axis.to_local(wall.points[wall.tets].mean(axis=1))
+    u = wall.right.fraction(local[:, 2], np.arctan2(local[:, 1], local[:, 0]))
+    cells = np.flatnonzero((wall.region == biv_mesh.SEPTUM) & (u > 0.2) & (u < 0.8)
+                           & (local[:, 2] < -5.0) & (local[:, 2] > -45.0))
+    d = fields.cell_septal_depth[cells]
+    # the two septal frames share their axes there, so the slerp turns the helix linearly in d
+    # (Shoemake 1985): +lv_helix_endo on the left side to -rv_helix_endo on the right side, with
+    # no jump at mid-wall
+    want = law.lv_helix_endo * (1 - d) - law.rv_helix_endo * d
+    assert np.abs(_cell_helix(coords, arch, cells) - want).max() < 1.0
+    assert d.min() < 0.1 and d.max() > 0.9

@@ -117,7 +117,13 @@ def test_cli_demo_biv(tmp_path, capsys):
     out = tmp_path / "demo"
     assert main(["demo", "--biv", "--out", str(out), "--mesh-size", "4", "--no-report"]) == 0
     manifest = json.loads((out / "manifest.json").read_text())
-    assert manifest["summary"]["biventricular"]["ventricles"] == "biv"
+    biv = manifest["summary"]["biventricular"]
+    assert biv["ventricles"] == "biv"
+    # the noisy, shifted demo stack against its analytic volumes (quadrature, elementary calculus)
+    truth = biventricle.demo_subject().volumes_ml()
+    assert biv["lv_cavity_volume_ml"] == pytest.approx(truth["lv_cavity_ml"], rel=0.03)
+    assert biv["rv_cavity_volume_ml"] == pytest.approx(truth["rv_cavity_ml"], rel=0.03)
+    assert biv["wall_volume_ml"] == pytest.approx(truth["wall_ml"], rel=0.03)
     assert (out / "input" / "contours.csv").read_text().count("rv_endo") > 100
     assert main(["demo", "--biv", "--labelmap", "--out", str(tmp_path / "x")]) == 2
     assert "error: --biv with --labelmap" in capsys.readouterr().err
