@@ -28,7 +28,7 @@ from scipy.spatial import cKDTree
 
 from fibers import meshtools
 from fibers.biv.surfaces import RightSurfaces, epi_point
-from fibers.mesh import ROW, _stitch_all, _surface_rings, tet_quality
+from fibers.mesh import ROW, _match_tags, _stitch_all, _surface_rings, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
 
@@ -95,8 +95,6 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)
     faces, _ = meshtools.boundary_faces(tets)
-    from fibers.mesh import _match_tags
-
     face_tags = _match_tags(faces, tri, len(points_world))
     region = label_regions(points, tets, right)
     return BiVMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
@@ -325,7 +323,7 @@ def _gmsh_volume(local, tri, rims, size, threads):
 
     gmsh.initialize(interruptible=False)
     try:
-        gmsh.option.setNumber("General.Terminal", int(__import__("os").environ.get("GMSH_DEBUG", "0")))
+        gmsh.option.setNumber("General.Terminal", 0)
         gmsh.option.setNumber("General.NumThreads", max(1, int(threads)))
         gmsh.model.add("biventricular wall")
         m = gmsh.model
