@@ -27,7 +27,7 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 from fibers import meshtools
-from fibers.biv.surfaces import RightSurfaces, epi_point
+from fibers.biv.surfaces import RightSurfaces
 from fibers.mesh import ROW, _match_tags, _stitch_all, _surface_rings, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
@@ -379,15 +379,17 @@ def _gmsh_volume(local, tri, rims, size, threads):
 
 def label_regions(local_points: np.ndarray, tets: np.ndarray, right: RightSurfaces) -> np.ndarray:
     """Region (M,) int8 of each tetrahedron from its centroid (local frame): 3 right free wall
-    outside the left epicardium, 2 septum inside it where the right cavity lies beyond, 1 else."""
+    outside the left epicardium, 2 septum inside it where the right cavity lies beyond, 1 else.
+
+    Outside is read in the epicardium's own prolate coordinates (lambda above the fitted
+    surface's), one evaluation per centroid.
+    """
     c = local_points[tets].mean(axis=1)
     theta = np.arctan2(c[:, 1], c[:, 0])
-    rho = np.hypot(c[:, 0], c[:, 1])
     z = np.minimum(c[:, 2], 0.0)
-    r_epi = epi_point(right.lv, z, theta)[1]
     region = np.full(len(tets), LV_FREE_WALL, np.int8)
     region[right.cavity_width(z, theta) > 0] = SEPTUM
-    region[rho > r_epi] = RV_FREE_WALL
+    region[right.lv._local_distance("epi", c) > 0] = RV_FREE_WALL
     return region
 
 
