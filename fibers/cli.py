@@ -58,6 +58,8 @@ def _parser() -> argparse.ArgumentParser:
     d.add_argument("--cohort", type=int, metavar="N",
                    help="instead, write N varied synthetic subjects and one broken case into --out, for fibers cohort")
     _cohort_parser(sub, build_options)
+    d.add_argument("--biv", action="store_true",
+                   help="both ventricles: the synthetic subject with a right ventricle (contours endo, epi, rv_endo, rv_epi)")
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
     r.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
@@ -236,6 +238,10 @@ def _demo(args) -> int:
     with tempfile.TemporaryDirectory(prefix="fibers-demo-") as tmp:
         tmp = Path(tmp)
         include = {}
+        if args.biv:
+            if args.labelmap:
+                raise InputError("--biv with --labelmap: the biventricular demo is given as contours only; drop --labelmap")
+            return _demo_biv(args, tmp)
         if args.labelmap:
             from fibers.demo import voxels
             from fibers.io.labelmap import write_labelmap
@@ -354,6 +360,28 @@ def _demo_cohort(args) -> int:
     cases = write_cohort(args.out, args.cohort, mesh_size=args.mesh_size or 1.5)
     log.info("demo: wrote %d synthetic subjects and 1 broken case into %s; try: fibers cohort %s/*/ --out RESULTS",
              len(cases) - 1, args.out, args.out)
+    return 0
+
+
+def _demo_biv(args, tmp: Path) -> int:
+    """The synthetic pair of ventricles as contours, built on the biventricular route."""
+    from fibers import pipeline
+    from fibers.demo import biventricle
+    from fibers.io import case as case_io
+    from fibers.io.contours import write_contours
+
+    biv = biventricle.demo_subject()
+    contours, _ = biv.sample_stack(spacing=8.0, point_spacing=1.5, noise=0.4, shift=2.0, seed=11)
+    write_contours(tmp / "contours.csv", contours)
+    # no [landmarks]: the insertion points are found from the right-ventricular contours
+    text = case_io.case_text(landmarks=None).replace("align_slices = true", 'align_slices = true\nventricles = "biv"')
+    (tmp / "case.toml").write_text(text)
+    truth = biv.volumes_ml()
+    log.info("demo: synthetic ventricles, LV cavity %.0f mL, RV cavity %.0f mL, wall %.0f mL (truth)",
+             truth["lv_cavity_ml"], truth["rv_cavity_ml"], truth["wall_ml"])
+    case = _override(case_io.read_case(tmp / "case.toml"), args)
+    include = {"input/contours.csv": tmp / "contours.csv", "input/case.toml": tmp / "case.toml"}
+    pipeline.build(case, args.out, report=not args.no_report, include=include)
     return 0
 
 

@@ -77,6 +77,12 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
     frames), merged into the summary.
     """
     clock = clock or _Clock()
+    contours, right, route_notes = _split_ventricles(contours, case)
+    notes = tuple(notes) + route_notes
+    if right is not None:  # both ventricles: fibers.biv, its own stages
+        from fibers.biv import route
+
+        return route.run(contours, right, case, box=box, landmarks=landmarks, clock=clock, notes=notes)
     base = base_choice(case)
     if getattr(case, "slice_thickness", None):
         contours = replace(contours, slice_thickness=float(case.slice_thickness))
@@ -167,6 +173,20 @@ def _slice_facts(stack, contours: RawContours, base: str, facts: dict) -> dict:
                                "contour)" if base == "slab" else "the basal contour's plane"}}
     out.update({k: v for k, v in facts.items() if k != "slices"})
     return out
+
+
+def _split_ventricles(contours: RawContours, case):
+    """Left contours, the right ones when the biventricular route applies (else None), notes.
+
+    Without right-ventricular rows the contours come back as they are (the LV route unchanged).
+    """
+    from fibers.biv import inputs as biv_inputs
+
+    left, right = biv_inputs.split_contours(contours)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        route = biv_inputs.choose_route(getattr(case, "ventricles", None), right)
+    return left, (right if route == "biv" else None), tuple(str(w.message) for w in record)
 
 
 def _contour_box(contours: RawContours, margin: float) -> Box:
@@ -267,10 +287,15 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
                 if case.labelmap is not None:   # the extracted contours, to edit and rebuild
                     from fibers.io import contours as contour_io
                     contour_io.write_contours(tmp / "contours.csv", result.contours)
+                if getattr(result, "right", None) is not None:  # both ventricles: their extra fields
+                    from fibers.biv import outputs as biv_outputs
+                    biv_outputs.write_extra(tmp, result)
             if extra is not None:
                 extra(tmp)
             manifest = outputs.manifest(result, case, provenance)
             _record_resolved(manifest, case, facts)
+            if getattr(result, "right", None) is not None:
+                biv_outputs.amend_manifest(manifest, result)
             if report:
                 from fibers import report as report_stage
                 with clock.stage("report", "report/index.html"):

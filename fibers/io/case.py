@@ -48,6 +48,10 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "centreline": ("choice:straight|quadratic", "straight", None, None, "model of the centreline the slices are aligned to"),
         "base": ("choice:slab|slice", None, None, None, "base plane at the upper face of the basal slab or at the basal contour's plane (default: slab for a label map, slice for contours)"),
         "slice_thickness": ("float", None, 0.5, 50.0, "thickness a slice stands for, mm (default: the image's slice spacing, or the contours' median spacing)"),
+        "ventricles": ("choice:lv|biv", None, None, None,
+                       "'lv' or 'biv'; by default 'biv' when right-ventricular contours are given"),
+        "rv_wall_thickness": ("float", 3.5, 0.5, 15.0,
+                              "mm the right free wall is grown outward from rv_endo when rv_epi is absent"),
     },
     "mesh": {
         "size": ("float", 1.5, 0.3, 10.0, "target tetrahedron edge length, mm"),
@@ -79,6 +83,12 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     "segments": {
         "septal_sectors": ("choice:fixed|insertions", "fixed", None, None,
                            "60-degree sectors about the septal bisector, or septal sectors ending at the insertion points"),
+    },
+    "biventricular": {  # fibers.biv: the rule-based law of Bayer et al. 2012 (defaults from memory)
+        **{f"{v}_{k}_{w}": ("float", d, -90.0, 90.0, f"{'left' if v == 'lv' else 'right'} ventricle's {k} angle at the "
+                            f"{'endocardium' if w == 'endo' else 'epicardium'}, degrees (both ventricles only)")
+           for v in ("lv", "rv") for k, w, d in (("helix", "endo", 40.0), ("helix", "epi", -50.0),
+                                                  ("sheet", "endo", -65.0), ("sheet", "epi", 25.0))},
     },
     "pools": {
         "myocardium": ("int", 100_000, 0, 20_000_000, "wall points"),
@@ -116,6 +126,9 @@ class Case:
     base: str | None = None          # None: "slab" for a label map, "slice" for contours
     slice_thickness: float | None = None
     max_tets: int = 5_000_000  # [mesh] max_tets: the mesh-size budget (fibers.budget)
+    ventricles: str | None = None   # "lv", "biv" or None (decided by the input: fibers.biv)
+    rv_wall_thickness: float = 3.5  # mm
+    biv_law: dict = field(default_factory=dict)  # [biventricular] angles, degrees
 
 
 def read_case(path: str | Path) -> Case:
@@ -174,6 +187,10 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
     law = fiber_law(values["fibers"])
     pools = PoolSettings(**values["pools"])
     budget.check_pools(pools, where=f"{name}: [pools]")
+    biv = {"ventricles": values["geometry"]["ventricles"],
+           "rv_wall_thickness": values["geometry"]["rv_wall_thickness"],
+           "biv_law": dict(values["biventricular"])}
+    _drop_untouched_biv_keys(values, data)
     return Case(path=path, sha256=sha256, contours=resolve(inp["contours"]),
                 labelmap=resolve(inp["labelmap"]), frame=inp["frame"],
                 labels=dict(values["input.labels"]), landmarks=landmarks,
@@ -183,7 +200,22 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
                 mesh_order=values["mesh"]["order"],
                 centreline=values["geometry"]["centreline"], base=values["geometry"]["base"],
                 slice_thickness=values["geometry"]["slice_thickness"],
-                max_tets=values["mesh"]["max_tets"])
+                max_tets=values["mesh"]["max_tets"], **biv)
+
+
+# case keys of both ventricles only (fibers.biv): left out of the resolved parameters unless
+# given, so a left-ventricular build's manifest and report stay as they were
+_BIV_ONLY = {"geometry": ("ventricles", "rv_wall_thickness"), "biventricular": tuple(SCHEMA["biventricular"])}
+
+
+def _drop_untouched_biv_keys(values: dict, data: dict) -> None:
+    for table, keys in _BIV_ONLY.items():
+        given = data.get(table, {}) if isinstance(data.get(table), dict) else {}
+        for key in keys:
+            if key not in given:
+                values[table].pop(key, None)
+    if not values["biventricular"]:
+        del values["biventricular"]
 
 
 def fiber_law(fib: dict) -> FiberLaw:

@@ -19,7 +19,7 @@ from fibers.errors import InputError
 from fibers.types import RawContours
 
 COLUMNS = ("structure", "slice", "x", "y", "z")
-STRUCTURES = ("endo", "epi")
+STRUCTURES = ("endo", "epi", "rv_endo", "rv_epi")  # rv_*: both ventricles (fibers.biv)
 MAX_FILE_BYTES = 512 * 2**20   # a short-axis stack is a few MB; beyond this it is not one
 MAX_COORDINATE_MM = 1e5        # 100 m: anything larger is not a scanner position in mm
 MAX_SLICE_ID = 2**31 - 1
@@ -90,7 +90,7 @@ def parse_contours(raw: bytes, name: str = "contours.csv") -> RawContours:
         k = int(np.argmax(bad))
         raise InputError(
             f"{name}, line {lines[k]}: unknown structure '{_short(structure[k])}'; allowed are 'endo' "
-            f"(endocardium) and 'epi' (epicardium)")
+            f"(endocardium), 'epi' (epicardium), 'rv_endo' and 'rv_epi' (right ventricle)")
     slice_id = _column(body, col["slice"], lines, name, "slice", integer=True)
     points = np.column_stack([_column(body, col[c], lines, name, c) for c in "xyz"])
     return RawContours(structure=structure, slice_id=slice_id, points=points, line=lines, source=name)

@@ -273,6 +273,11 @@ def helix_law(manifest: dict, depth: np.ndarray, pool: dict | None = None, *,
     """
     from fibers import architecture
 
+    biv = (manifest.get("summary") or {}).get("biventricular")
+    if biv:  # both ventricles (fibers.biv.coordinates): the left free wall's law
+        d = np.clip(np.asarray(depth, float), 0.0, 1.0)
+        law = biv["fiber_law_deg"]
+        return law["lv_helix_endo"] + (law["lv_helix_epi"] - law["lv_helix_endo"]) * d * d
     law = fiber_law(manifest)
     position = weight = None
     if pool is not None:
