@@ -287,14 +287,12 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
                 if case.labelmap is not None:   # the extracted contours, to edit and rebuild
                     from fibers.io import contours as contour_io
                     contour_io.write_contours(tmp / "contours.csv", result.contours)
-                if getattr(result, "right", None) is not None:  # both ventricles: their extra fields
-                    from fibers.biv import outputs as biv_outputs
-                    biv_outputs.write_extra(tmp, result)
             if extra is not None:
                 extra(tmp)
             manifest = outputs.manifest(result, case, provenance)
             _record_resolved(manifest, case, facts)
-            if getattr(result, "right", None) is not None:
+            if getattr(result, "right", None) is not None:  # both ventricles: their conventions
+                from fibers.biv import outputs as biv_outputs
                 biv_outputs.amend_manifest(manifest, result)
             if report:
                 from fibers import report as report_stage

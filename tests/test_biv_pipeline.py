@@ -61,7 +61,7 @@ def test_files_carry_tags_regions_and_fields(build):
     assert np.all(aha[region == 3] == 0) and set(np.unique(aha[region != 3])) == set(range(1, 18))
     d = vtu.point_data["septal_depth"]
     assert d.min() >= 0 and d.max() <= 1
-    faces = meshio.read(out / "mesh.xdmf").cell_data["boundary"][1]
+    faces = meshio.read(out / "facets.xdmf").cell_data["boundary"][0]
     assert set(np.unique(faces)) == {1, 2, 3, 4}
 
 

@@ -59,7 +59,7 @@ beyond 90 degrees (per wall or across the septum) are refused for that reason.
 
 The local frame written out (``e_rad``, ``e_long``, ``e_circ``) is the same construction with all
 angles 0, with ``e_rad`` turned to point from the endocardium to the epicardium in the free walls
-and from the left to the right cavity in the septum; ``helix_angle`` and ``transverse_angle`` are
+and from the left to the right cavity in the septum; ``helix_angle`` and ``sheet_angle`` are
 measured on the final fiber and sheet in that frame, degrees.
 """
 
@@ -70,9 +70,9 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from fibers import fem
-from fibers.architecture import Architecture
+from fibers.architecture import Architecture, short_axis_frame
 from fibers.biv.mesh import RV_ENDO, BiVMesh
-from fibers.coordinates import CardiacCoordinates, _even_along_axis, apex_patch
+from fibers.coordinates import CardiacCoordinates, _even_along_axis, apex_patch, frame_quality
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI
 
@@ -197,13 +197,37 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
         e_rad=nodal["e_rad"], e_long=nodal["e_long"], e_circ=nodal["e_circ"],
         cell_e_rad=cellwise["e_rad"], cell_e_long=cellwise["e_long"], cell_e_circ=cellwise["e_circ"],
         cell_transmural=cell_fields[2], cell_apicobasal=position[tets].mean(axis=1),
-        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero))
+        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
+        # both ventricles: the depth the laws use is the Laplace one (phi_epi); the LV's
+        # surface-distance fraction has no meaning across the septum
+        thickness_fraction=phi_epi, cell_thickness_fraction=cell_fields[2],
+        frame_quality=frame_quality(points, mesh.axis), cell_frame_quality=frame_quality(centroids, mesh.axis))
+    sax, imbrication = _imaging_angles(nodal["fiber"], nodal["e_rad"], points, mesh.axis)
     arch = Architecture(fiber=nodal["fiber"], sheet=nodal["sheet"], sheet_normal=nodal["sheet_normal"],
-                        helix_angle=nodal["helix"], transverse_angle=nodal["sheet_angle"],
+                        helix_angle=nodal["helix"], helix_angle_sax=sax, imbrication_angle=imbrication,
+                        sheet_angle=nodal["sheet_angle"], dispersion=np.zeros(len(points)),
                         cell_fiber=cellwise["fiber"], cell_sheet=cellwise["sheet"],
                         cell_sheet_normal=cellwise["sheet_normal"])
     return coords, arch, BiVFields(phi_lv=phi_lv, phi_rv=phi_rv, septal_depth=septal,
                                    cell_septal_depth=cell_septal)
+
+
+def _imaging_angles(fiber, e_rad, points, axis):
+    """The fiber's angles in the imaging convention, measured from the vectors (degrees).
+
+    ``helix_angle_sax``: the fiber's projection on the wall's tangent plane against the
+    short-axis circumferential direction (`fibers.architecture.short_axis_frame`);
+    ``imbrication_angle``: the fiber's angle out of that plane. Folded to [-90, 90): a fiber is
+    a line.
+    """
+    fallback = np.cross(e_rad, np.eye(3)[np.argmin(np.abs(e_rad), axis=1)])
+    fallback /= np.linalg.norm(fallback, axis=1)[:, None]
+    c, l = short_axis_frame(e_rad, points, axis, fallback=fallback)
+    sign = np.where(np.einsum("ij,ij->i", fiber, c) < 0, -1.0, 1.0)[:, None]
+    f = fiber * sign
+    sax = np.degrees(np.arctan2(np.einsum("ij,ij->i", f, l), np.einsum("ij,ij->i", f, c)))
+    imbrication = np.degrees(np.arcsin(np.clip(np.einsum("ij,ij->i", f, e_rad), -1.0, 1.0)))
+    return sax, imbrication
 
 
 def _septal_depth(phi_lv, phi_rv, g_lv=None, g_rv=None):

@@ -63,7 +63,8 @@ def _biv_fields(arrays, mesh, arch, fields):
     arrays["fiber"], arrays["sheet"] = fiber, sheet
     arrays["sheet_normal"] = np.cross(fiber, sheet)
     arrays["helix_angle"] = _interp(arrays, mesh, arch.helix_angle)
-    arrays["transverse_angle"] = _interp(arrays, mesh, arch.transverse_angle)
+    for name in ("helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion"):
+        arrays[name] = _interp(arrays, mesh, getattr(arch, name))
     arrays["septal_depth"] = np.clip(_interp(arrays, mesh, fields.septal_depth), 0.0, 1.0)
     region = mesh.region[arrays["tet"]]
     arrays["region"] = region

@@ -18,7 +18,8 @@ from fibers.biv import coordinates as biv_coords, mesh as biv_mesh, pools as biv
 from fibers.biv.inputs import RightContours
 from fibers.biv.surfaces import epi_point, fit_right
 from fibers.config import Box, Landmarks
-from fibers.pipeline import Result, _Clock, _contour_box, summarise
+from fibers.io.folder import rearm_signals, signals_blocked
+from fibers.pipeline import Result, _Clock, _contour_box, _slice_facts, base_choice, summarise
 from fibers.types import RawContours
 
 log = logging.getLogger("fibers")
@@ -34,6 +35,21 @@ class BiVResult(Result):
     rv_region: np.ndarray | None = None
     law: biv_coords.BiVLaw | None = None
 
+    # what the mesh files carry beyond the left-ventricular fields (fibers.io.outputs)
+    @property
+    def extra_point_data(self) -> dict:
+        return {"septal_depth": self.fields.septal_depth, "phi_lv": self.fields.phi_lv,
+                "phi_rv": self.fields.phi_rv}
+
+    @property
+    def extra_cell_data(self) -> dict:
+        return {"region": np.asarray(self.mesh.region, np.int32),
+                "rv_region": np.asarray(self.rv_region, np.int32)}
+
+    @property
+    def face_names(self) -> dict:
+        return dict(biv_mesh.FACE_NAMES)
+
 
 def run(contours: RawContours, right: RightContours, case, *, box: Box | None = None,
         landmarks: Landmarks | None = None, clock: _Clock | None = None,
@@ -42,16 +58,22 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
     clock = clock or _Clock()
     law = biv_coords.BiVLaw(**getattr(case, "biv_law", {}))
     law.check()
+    base = base_choice(case)
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         with clock.stage("stack", lambda: f"{len(stack.slices)} slices, base to apex"):
-            stack = stack_stage.check_stack(contours, align_slices=case.align_slices)
+            stack = stack_stage.check_stack(contours, align_slices=case.align_slices,
+                                            centreline=getattr(case, "centreline", "straight"), base=base)
         with clock.stage("surfaces", lambda: f"left fit RMS up to {max(r['rms_mm'] for r in surf.residuals):.2f} mm; "
                          f"right ventricle on {len(rs.heights)} slices, outer surface {rs.outer_from}"):
             surf = surface_stage.fit_surfaces(stack)
             rs = fit_right(stack, surf, right, wall_thickness=case.rv_wall_thickness)
         with clock.stage("mesh", lambda: f"{len(wall.tets):,} tetrahedra, {len(wall.points):,} nodes, both ventricles"):
-            wall = biv_mesh.build_mesh(surf, rs, size=case.mesh_size)
+            with signals_blocked():  # gmsh resets SIGTERM and SIGHUP (as on the LV route)
+                try:
+                    wall = biv_mesh.build_mesh(surf, rs, size=case.mesh_size)
+                finally:
+                    rearm_signals()
         # landmarks of the case file (or a label map's) win over the ones found from the geometry
         if landmarks is None or not landmarks.present:
             landmarks = case.landmarks if case.landmarks.present else insertion_points(wall)
@@ -72,6 +94,7 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
                        timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
                        right=rs, fields=fields, rv_region=rv_region, law=law)
     result.summary = summarise(result)
+    result.summary.update(_slice_facts(result.stack, contours, base, {}))
     result.summary["biventricular"] = biv_summary(result)
     # the resolved biventricular parameters (left out of "parameters" unless the case gave them)
     result.summary["biventricular"]["rv_wall_thickness_parameter_mm"] = float(case.rv_wall_thickness)

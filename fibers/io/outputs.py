@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import json
 import platform
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -55,6 +55,7 @@ def point_data(result) -> dict:
                                                 "e_rad", "e_long", "e_circ", "frame_quality")}
     data.update({name: getattr(a, name) for name in ("fiber", "sheet", "sheet_normal", "helix_angle", "helix_angle_sax",
                                                      "imbrication_angle", "sheet_angle", "dispersion")})
+    data.update(getattr(result, "extra_point_data", {}))  # a route's own fields (both ventricles)
     return {k: np.ascontiguousarray(v, dtype=np.float64) for k, v in data.items()}
 
 
@@ -62,6 +63,7 @@ def cell_data(result) -> dict:
     data = {"aha_segment": np.asarray(result.aha, dtype=np.int32)}
     for name, attr in CELL_TRIAD.items():
         data[f"{name}_cell"] = np.ascontiguousarray(getattr(result.arch, attr), dtype=np.float64)
+    data.update(getattr(result, "extra_cell_data", {}))
     return data
 
 
@@ -105,6 +107,7 @@ class FemMesh:
     rings: dict
     point_data: dict
     cell_data: dict
+    face_names: dict = field(default_factory=lambda: dict(FACE_TAG_NAMES))
 
     @property
     def types(self) -> tuple[str, str, str]:
@@ -116,14 +119,15 @@ def fem_mesh(result) -> FemMesh:
     from fibers import meshtools, quadratic
 
     pdata, cdata = point_data(result), cell_data(result)
+    names = dict(getattr(result, "face_names", FACE_TAG_NAMES))
     quad = getattr(result, "quadratic", None)
     if quad is not None:
         return FemMesh(2, quad.points, quad.tets, quad.faces, quad.face_tags, quad.rings, pdata,
-                       quadratic.parent_cell_data(quad, cdata))
+                       quadratic.parent_cell_data(quad, cdata), names)
     wall = result.mesh
     base = wall.faces[wall.face_tags == BASE]
     rings = {tag: meshtools.shared_edges(wall.faces[wall.face_tags == tag], base) for tag in RING_TAGS}
-    return FemMesh(1, wall.points, wall.tets, wall.faces, wall.face_tags, rings, pdata, cdata)
+    return FemMesh(1, wall.points, wall.tets, wall.faces, wall.face_tags, rings, pdata, cdata, names)
 
 
 def field_lines() -> dict:
@@ -183,8 +187,9 @@ def write_xdmf(folder: Path, fem: FemMesh) -> None:
     _describe_xdmf(folder / "mesh.xdmf", "mesh", segments,
                    "aha_segment numbers and names; cell fields per element, point fields per node",
                    first="aha_segment")
-    faces = {name: (tag, 2) for tag, name in FACE_TAG_NAMES.items()}
-    _describe_xdmf(folder / "facets.xdmf", "facets", faces, "boundary: 1 endo, 2 epi, 3 base")
+    faces = {name: (tag, 2) for tag, name in fem.face_names.items()}
+    _describe_xdmf(folder / "facets.xdmf", "facets", faces,
+                   "boundary: " + ", ".join(f"{tag} {name}" for tag, name in fem.face_names.items()))
 
 
 def _describe_xdmf(path: Path, grid_name: str, tags: dict, tags_line: str, *, first: str | None = None) -> None:
@@ -232,7 +237,7 @@ def write_msh(path: Path, fem: FemMesh) -> None:
            [np.full(len(r), RING_TAGS[tag], np.int32) for tag, r in zip(RING_TAGS, rings)]
     msh = meshio.Mesh(fem.points, blocks, cell_data={"gmsh:physical": phys, "gmsh:geometrical": phys})
     msh.field_data = {"wall": np.array([WALL_TAG, 3]),
-                      **{name: np.array([tag, 2]) for tag, name in FACE_TAG_NAMES.items()},
+                      **{name: np.array([tag, 2]) for tag, name in fem.face_names.items()},
                       **{RING_NAMES[tag]: np.array([t, 1]) for tag, t in RING_TAGS.items()}}
     meshio.write(path, msh, file_format="gmsh22", binary=True)
 
