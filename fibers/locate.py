@@ -23,6 +23,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial import cKDTree
 
+from fibers import meshtools
+
 _CHUNK = 262_144   # points per block, bounds the temporaries to some 100 MB
 _MAX_STEPS = 64    # walk steps before the complete search takes over
 
@@ -30,11 +32,13 @@ _MAX_STEPS = 64    # walk steps before the complete search takes over
 def face_neighbours(tets: np.ndarray) -> np.ndarray:
     """Element (M, 4) across the face opposite each local vertex, -1 on the boundary."""
     m = len(tets)
+    if m == 0:
+        return np.full((0, 4), -1, np.int64)
     opposite = np.array([[1, 2, 3], [0, 2, 3], [0, 1, 3], [0, 1, 2]])
-    key = np.sort(tets[:, opposite].reshape(-1, 3), axis=1)
-    order = np.lexsort(key.T[::-1])
+    key = meshtools.face_keys(tets[:, opposite], int(np.max(tets)) + 1)
+    order = np.argsort(key)
     k = key[order]
-    same = np.all(k[1:] == k[:-1], axis=1)
+    same = k[1:] == k[:-1]
     a, b = order[:-1][same], order[1:][same]
     out = np.full(4 * m, -1, np.int64)
     out[a], out[b] = b // 4, a // 4
