@@ -239,3 +239,27 @@ def _replace(tmp: Path, out: Path) -> None:
     tmp.rename(out)
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
+
+
+@contextmanager
+def staged_folder(out: str | Path):
+    """A temporary folder beside ``out`` that replaces it when the block ends without error.
+
+    For the commands that write a folder after a build (fresh pools, voxel volumes): the same
+    refusal of a foreign folder and the same final rename as `build`. What is written must
+    include a ``manifest.json`` so that a later run may replace the folder.
+    """
+    out = Path(out)
+    _check_out(out)
+    tmp = out.parent / f".{out.name}.partial-{uuid.uuid4().hex[:8]}"
+    try:
+        tmp.mkdir(parents=True)
+    except OSError as err:
+        raise InputError(f"cannot create the output folder beside {out} ({err.strerror}); "
+                         f"choose another --out") from None
+    try:
+        yield tmp
+        _replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise

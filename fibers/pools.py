@@ -16,7 +16,10 @@ Pools (DESIGN.md section 3.4) and what each point carries:
 - ``cavity``: uniform in the volume closed by the endocardial faces and the base plane.
 - ``background``: uniform in the oriented box and outside the wall, with ``region`` (int8) and
   ``region_names`` (``region_names[code]``): 1 cavity, 2 above the base plane, 3 outside the
-  heart below the base plane (0, the wall, never occurs).
+  heart below the base plane (0, the wall, never occurs). In the files the names travel in the
+  archive's ``metadata.json`` member, never as a string array (see `fibers.io.pools`).
+
+With ``settings.float32`` every float field (points included) is float32, for training loops.
 
 Inside the cavity: a point below the base plane is inside iff a ray from it toward the apex
 (along ``-axis.direction``) crosses the endocardial faces an odd number of times. The ray never
@@ -411,7 +414,14 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     pools["background"] = Pool("background", {"points": points, "region": region.astype(np.int8),
                                               "region_names": np.array(REGION_NAMES)})
     log.debug("pool background: %d points", len(points))
+    if settings.float32:
+        pools = {name: Pool(name, as_float32(pool.arrays)) for name, pool in pools.items()}
     return {name: pools[name] for name in POOL_NAMES}
+
+
+def as_float32(arrays: dict) -> dict:
+    """The same arrays with every float64 one as float32 (points, fields); integers unchanged."""
+    return {k: v.astype(np.float32) if v.dtype == np.float64 else v for k, v in arrays.items()}
 
 
 # -- reading and batching --------------------------------------------------------------------
