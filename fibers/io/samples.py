@@ -9,6 +9,7 @@ build's world frame. FIELDS is a numbers-only ``.npz`` archive (`fibers.io.pools
 from __future__ import annotations
 
 import os
+import re
 import uuid
 import zipfile
 from pathlib import Path
@@ -79,8 +80,6 @@ def _load_csv(path: Path) -> np.ndarray:
     except ValueError as err:
         # numpy names the row counted from the first data line: line = row + 2 (header is line 1)
         text = str(err).splitlines()[-1]
-        import re
-
         row = re.search(r"row (\d+)", text)
         where = f" line {int(row.group(1)) + 2}" if row else ""
         raise InputError(f"{path}{where}: {text.rstrip('.')}; give numbers in mm in x, y, z") from None
