@@ -68,17 +68,20 @@ class FieldEvaluator:
         The build's pool settings (for fresh pools).
     manifest : dict, optional
         The build's manifest.
+    locator : Locator, optional
+        A locator of this mesh to reuse.
     """
 
     def __init__(self, mesh: WallMesh, coords: CardiacCoordinates, law: FiberLaw, septum=None, *,
                  extra: dict | None = None, box: Box | None = None,
-                 settings: PoolSettings | None = None, manifest: dict | None = None):
+                 settings: PoolSettings | None = None, manifest: dict | None = None,
+                 locator: Locator | None = None):
         self.mesh, self.coords, self.law, self.septum = mesh, coords, law, septum
         self.extra = dict(extra or {})
         self.box = box
         self.settings = settings if settings is not None else PoolSettings()
         self.manifest = manifest or {}
-        self.locator = Locator(mesh.points, mesh.tets)
+        self.locator = Locator(mesh.points, mesh.tets) if locator is None else locator
 
     def locate(self, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Containing tetrahedron (K,) (-1 outside) and barycentric weights (K, 4)."""
@@ -213,7 +216,8 @@ def open(folder) -> FieldEvaluator:  # noqa: A001  (fibers.open reads like the b
     points, tets = data["points"], data["tets"]
     coords = _coordinates(point_data, len(tets))
     axis, ends = _axis_of(manifest, data["folder"])
-    faces, _ = meshtools.boundary_faces(tets)
+    locator = Locator(points, tets)
+    faces = _boundary_faces(tets, locator)
     face_tags, axis = _tag_faces(points, faces, coords.transmural, axis)
     mesh = WallMesh(points=points, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                     endo_apex=ends[0], epi_apex=ends[1])
@@ -221,7 +225,17 @@ def open(folder) -> FieldEvaluator:  # noqa: A001  (fibers.open reads like the b
     extra = {k: v for k, v in point_data.items() if k not in _REBUILT}
     log.debug("opened %s: %d tetrahedra, %d nodes", data["folder"], len(tets), len(points))
     return FieldEvaluator(mesh, coords, case.law, septum, extra=extra, box=_box_of(manifest),
-                          settings=case.pools, manifest=manifest)
+                          settings=case.pools, manifest=manifest, locator=locator)
+
+
+def _boundary_faces(tets: np.ndarray, locator: Locator) -> np.ndarray:
+    """`fibers.meshtools.boundary_faces` (same rows, same order) from the locator's neighbours.
+
+    A face with no neighbour across it is on the boundary; face j of an element is the one
+    opposite its vertex j in both, so the element-major order of the flat index is the same.
+    """
+    flat = np.flatnonzero(locator.neighbours.ravel() < 0)
+    return tets[flat // 4][np.arange(len(flat))[:, None], meshtools.LOCAL_FACES[flat % 4]]
 
 
 def _case_of(manifest: dict, folder: Path):

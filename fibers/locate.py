@@ -97,6 +97,11 @@ class Locator:
         self._start = np.full(int(self._shape.prod()), -1, np.int64)
         self._start[occupied] = self._tree.query(centre, workers=-1)[1]
 
+    @property
+    def neighbours(self) -> np.ndarray:
+        """Element (M, 4) across the face opposite each local vertex, -1 on the boundary."""
+        return self._neighbours
+
     def _cells(self, p: np.ndarray) -> np.ndarray:
         # Clipped to one cell beyond the grid so far points cast safely and stay off it.
         f = np.clip(np.floor((p - self._lo) / self._cell), -1, self._shape)

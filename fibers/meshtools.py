@@ -7,6 +7,7 @@ import numpy as np
 # Local faces of a tetrahedron (a, b, c, d), each listed so that, for a positively oriented
 # tetrahedron, its right-hand normal points away from the opposite vertex.
 _LOCAL_FACES = np.array([[1, 2, 3], [0, 3, 2], [0, 1, 3], [0, 2, 1]])
+LOCAL_FACES = _LOCAL_FACES  # face j is the one opposite vertex j
 
 
 def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:

@@ -149,7 +149,12 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
         ``transverse_angle`` (degrees), ``aha_segment`` (int8).
     """
     def interp(nodal):
-        return np.einsum("km,km...->k...", weights, np.asarray(nodal)[nodes])
+        nodal = np.asarray(nodal)
+        if nodal.ndim == 1:
+            return np.einsum("km,km->k", weights, nodal[nodes])
+        # one 1-D gather per component: gathering (K, m, 3) rows at once was 2-3x slower
+        return np.stack([np.einsum("km,km->k", weights, nodal[:, j][nodes])
+                         for j in range(nodal.shape[1])], axis=1)
 
     transmural = np.clip(interp(coords.transmural), 0.0, 1.0)
     apicobasal = np.clip(interp(coords.apicobasal), 0.0, 1.0)
