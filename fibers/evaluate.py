@@ -82,10 +82,11 @@ class FieldEvaluator:
         self.settings = settings if settings is not None else PoolSettings()
         self.manifest = manifest or {}
         self.locator = Locator(mesh.points, mesh.tets) if locator is None else locator
+        self._outside = _ClearlyOutside(mesh)
 
     def locate(self, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Containing tetrahedron (K,) (-1 outside) and barycentric weights (K, 4)."""
-        return self.locator(checked_points(points))
+        return self.locator(checked_points(points), known_outside=self._outside)
 
     def at(self, points) -> dict[str, np.ndarray]:
         """Every field at points.
@@ -109,7 +110,7 @@ class FieldEvaluator:
             ``points`` is not an (K, 3) array of finite numbers.
         """
         points = checked_points(points)
-        tet, bary = self.locator(points)
+        tet, bary = self.locator(points, known_outside=self._outside)
         rows = np.flatnonzero(tet >= 0)
         fields = wall_fields(points[rows], self.mesh.tets[tet[rows]], bary[rows], self)
         for name, nodal in self.extra.items():
@@ -135,6 +136,22 @@ class FieldEvaluator:
         """
         settings = self.settings if settings is None else settings
         return pool_stage.build_pools(self.mesh, self.coords, self.law, self.septum, settings, box=self.box)
+
+
+class _ClearlyOutside:
+    """Points certainly outside the wall: the pools' ray-parity test against the endocardial
+    and epicardial faces says so, and they lie farther than 1e-6 of the wall's size from the
+    base plane (a point on a face may go either way in the parity test; the locator's
+    tolerance decides those)."""
+
+    def __init__(self, mesh: WallMesh):
+        self._parity = pool_stage.EnclosedTest(mesh, tags=(ENDO, EPI))
+        self._axis = mesh.axis
+        self._tol = 1e-6 * float(np.ptp(mesh.points, axis=0).max()) if len(mesh.points) else 0.0
+
+    def __call__(self, points: np.ndarray) -> np.ndarray:
+        depth = segments.depth_below_base(points, self._axis)
+        return (np.abs(depth) > self._tol) & ~self._parity(points)
 
 
 def wall_fields(points, nodes, weights, evaluator: FieldEvaluator) -> dict[str, np.ndarray]:

