@@ -63,10 +63,65 @@ def _parser() -> argparse.ArgumentParser:
     r = sub.add_parser("report", help="re-draw the report of a finished build")
     r.add_argument("folder", type=Path)
     r.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
+    _after_build_parsers(sub)
     v = sub.add_parser("view", help="open a finished build in an interactive 3-D window")
     v.add_argument("folder", type=Path)
     v.add_argument("--debug", action="store_true", default=argparse.SUPPRESS)
     return p
+
+
+def _after_build_parsers(sub) -> None:
+    """``sample``, ``pools`` and ``voxelize``: commands on a finished build."""
+    s = sub.add_parser("sample", help="every field of a finished build at the points of a file")
+    s.add_argument("folder", type=Path, help="a finished build")
+    s.add_argument("points", type=Path, help=".npy (n, 3), .npz with 'points', or CSV with header x,y,z (mm)")
+    s.add_argument("--out", required=True, type=Path, help="fields file (.npz)")
+    p = sub.add_parser("pools", help="fresh sample-point pools from a finished build")
+    p.add_argument("folder", type=Path, help="a finished build")
+    p.add_argument("--seed", required=True, type=int, help="seed of the new pools")
+    p.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
+    from fibers.pools import POOL_NAMES
+
+    for name in POOL_NAMES:
+        p.add_argument(f"--{name}", type=int, metavar="N", help=f"points in the {name} pool (default: the build's)")
+    p.add_argument("--sampler", choices=("random", "sobol"), help="default: the build's")
+    p.add_argument("--float32", action="store_true", default=None, help="float fields as float32")
+    p.add_argument("--vtp", action="store_true", help="also write VTP point clouds")
+    x = sub.add_parser("voxelize", help="labels and fields of a finished build as NIfTI volumes")
+    x.add_argument("folder", type=Path, help="a finished build")
+    grid = x.add_mutually_exclusive_group()
+    grid.add_argument("--like", type=Path, help="take the grid of this NIfTI image")
+    grid.add_argument("--spacing", type=float, help="cubic voxels of this size (mm) on the build's box")
+    x.add_argument("--out", required=True, type=Path, help="output folder (written atomically)")
+    for q in (s, p, x):
+        q.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help="show tracebacks")
+
+
+def _after_build(args) -> int:
+    if args.command == "sample":
+        from fibers.evaluate import sample
+
+        log.info("%-13s %s", "wrote", sample(args.folder, args.points, args.out))
+        return 0
+    if args.command == "pools":
+        from fibers.evaluate import write_fresh_pools
+        from fibers.pools import POOL_NAMES
+
+        if args.seed < 0:
+            raise InputError(f"--seed {args.seed}: must be 0 or more")
+        counts = {name: getattr(args, name) for name in POOL_NAMES}
+        bad = [f"--{k} {v}" for k, v in counts.items() if v is not None and v < 0]
+        if bad:
+            raise InputError(f"{bad[0]}: give a whole number >= 0")
+        write_fresh_pools(args.folder, args.out, seed=args.seed, counts=counts, sampler=args.sampler,
+                          float32=args.float32, vtp=args.vtp)
+        log.info("%-13s %s", "wrote", args.out)
+        return 0
+    from fibers.voxelize import voxelize_build
+
+    voxelize_build(args.folder, args.out, like=args.like, spacing=args.spacing)
+    log.info("%-13s %s", "wrote", args.out)
+    return 0
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -203,6 +258,8 @@ def _dispatch(args) -> int:
         page = report.redraw(args.folder)
         log.info("%-13s %7.2f s  %s", "report", time.perf_counter() - t0, page)
         return 0
+    if args.command in ("sample", "pools", "voxelize"):
+        return _after_build(args)
     if args.command == "view":
         from fibers import report
 

@@ -77,6 +77,7 @@ class PoolSettings:
     seed: int = 0
     sampler: str = "random"   # "random" or "sobol"
     margin: float = 10.0      # mm the contours' bounding box is grown by for the background
+    float32: bool = False     # store float fields as float32 (half the memory in training loops)
 
 
 @dataclass(frozen=True)

@@ -23,6 +23,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial import cKDTree
 
+from fibers import meshtools
+
 _CHUNK = 262_144   # points per block, bounds the temporaries to some 100 MB
 _MAX_STEPS = 64    # walk steps before the complete search takes over
 
@@ -30,11 +32,13 @@ _MAX_STEPS = 64    # walk steps before the complete search takes over
 def face_neighbours(tets: np.ndarray) -> np.ndarray:
     """Element (M, 4) across the face opposite each local vertex, -1 on the boundary."""
     m = len(tets)
+    if m == 0:
+        return np.full((0, 4), -1, np.int64)
     opposite = np.array([[1, 2, 3], [0, 2, 3], [0, 1, 3], [0, 1, 2]])
-    key = np.sort(tets[:, opposite].reshape(-1, 3), axis=1)
-    order = np.lexsort(key.T[::-1])
+    key = meshtools.face_keys(tets[:, opposite], int(np.max(tets)) + 1)
+    order = np.argsort(key)
     k = key[order]
-    same = np.all(k[1:] == k[:-1], axis=1)
+    same = k[1:] == k[:-1]
     a, b = order[:-1][same], order[1:][same]
     out = np.full(4 * m, -1, np.int64)
     out[a], out[b] = b // 4, a // 4
@@ -75,7 +79,9 @@ class Locator:
         self._tree = cKDTree(centroid)
         self._neighbours = face_neighbours(self.tets)
 
-        bmin, bmax = v.min(axis=1), v.max(axis=1)
+        # pairwise over the four corners: 4x faster than a reduction along the short axis
+        bmin = np.minimum(np.minimum(v[:, 0], v[:, 1]), np.minimum(v[:, 2], v[:, 3]))
+        bmax = np.maximum(np.maximum(v[:, 0], v[:, 1]), np.maximum(v[:, 2], v[:, 3]))
         self._cell = float(cell) if cell else 2.0 * float(np.median((bmax - bmin).max(axis=1)))
         pad = 1e-6 * self._cell                               # covers the eps tolerance
         self._lo = bmin.min(axis=0) - pad
@@ -92,6 +98,11 @@ class Locator:
         centre = self._lo + (ijk_occ + 0.5) * self._cell
         self._start = np.full(int(self._shape.prod()), -1, np.int64)
         self._start[occupied] = self._tree.query(centre, workers=-1)[1]
+
+    @property
+    def neighbours(self) -> np.ndarray:
+        """Element (M, 4) across the face opposite each local vertex, -1 on the boundary."""
+        return self._neighbours
 
     def _cells(self, p: np.ndarray) -> np.ndarray:
         # Clipped to one cell beyond the grid so far points cast safely and stay off it.
@@ -145,12 +156,15 @@ class Locator:
         bary[owner[keep]] = b[keep]
         return tet, bary
 
-    def __call__(self, query: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def __call__(self, query: np.ndarray, *, known_outside=None) -> tuple[np.ndarray, np.ndarray]:
         """Locate points.
 
         Parameters
         ----------
         query : ndarray (K, 3), mm
+        known_outside : callable, optional
+            Flags (J,) bool for points (J, 3) that certainly lie in no element; points whose
+            walk left the mesh and that it flags skip the complete search (its costliest step).
 
         Returns
         -------
@@ -174,6 +188,8 @@ class Locator:
             t, b, found = self._walk(q[rows], start[rows])
             tet[s + rows[found]], bary[s + rows[found]] = t[found], b[found]
             missed = rows[~found]
+            if len(missed) and known_outside is not None:
+                missed = missed[~known_outside(q[missed])]
             if len(missed):
                 t2, b2 = self._complete(q[missed])
                 tet[s + missed], bary[s + missed] = t2, b2

@@ -100,6 +100,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "seed": ("int", 0, 0, 2**63 - 1, "seed of every random draw"),
         "sampler": ("choice:random|sobol", "random", None, None, "source of sample positions"),
         "margin": ("float", 10.0, 0.0, 500.0, "mm the contours' bounding box grows for the background"),
+        "float32": ("bool", False, None, None, "store the pools' float fields as float32"),
     },
 }
 

@@ -81,6 +81,16 @@ def write_all(folder: Path, result) -> None:
     write_msh(folder / "mesh.msh", fem)
     write_surfaces(folder / "surfaces.vtp", result)
     write_pools(folder, result.pools)
+    write_segments_csv(folder / "segments.csv", result)
+
+
+def write_segments_csv(path: Path, result) -> None:
+    """``segments.csv``: volume, wall thickness and helix angles per AHA segment."""
+    from fibers.io.tables import write_table
+    from fibers.segment_table import COLUMNS, segment_table
+
+    rows = segment_table(result.mesh, result.arch.helix_angle, result.aha, result.septum)
+    write_table(path, rows, COLUMNS)
 
 
 # ----------------------------------------------------------------------------- mesh files
@@ -288,7 +298,9 @@ def manifest(result, case, inputs: list) -> dict:
 
     lm = result.landmarks
     def pt(p):
-        return None if p is None else [round(float(v), 4) for v in p]
+        # 1e-9 mm: fibers.open rebuilds the segment boundaries from these (at 1e-4 a few
+        # points in 10^5 fell across a boundary)
+        return None if p is None else [round(float(v), 9) for v in p]
     septum = result.septum
     return {
         "tool": "fibers",

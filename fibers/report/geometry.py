@@ -6,6 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
+from fibers.pools import REGION_NAMES
 from fibers.report.drawing import Scene, pyplot, save_figure, show_image, trim_common, x_label
 from fibers.report.reading import ACCENT, Build, INK, REGION_COLOURS, RESIDUAL_CMAP, outer_surface, surface_part, tetra_type, unit_vector
 
@@ -151,7 +152,8 @@ def fig_pools(build: Build, path: Path) -> dict:
         if "points" not in pool:
             continue
         if name == "background" and "region" in pool:
-            names = [str(n) for n in pool["region_names"]]
+            # the files carry the names in their metadata, not as a string array
+            names = [str(n) for n in pool.get("region_names", REGION_NAMES)]
             for code in np.unique(pool["region"]):
                 groups.append((f"background: {names[code]}", pool["points"][pool["region"] == code]))
         else:

@@ -1,0 +1,95 @@
+"""The per-segment table of a build (``segments.csv``): volume, wall thickness, helix angles.
+
+One row per AHA segment 1-17 (Cerqueira et al., Circulation 2002) and a row 0 for the whole
+wall. Per segment:
+
+- ``volume_ml``: the volume of the tetrahedra labelled with the segment (their centroid's label).
+- ``thickness_mean_mm``, ``thickness_min_mm``: wall thickness sampled at every node of the
+  endocardial surface (the distance to the nearest epicardial node) and of the epicardial
+  surface (to the nearest endocardial node), each sample labelled by the segment at its node.
+  Both surfaces are sampled so that the apex (segment 17, which has no endocardium) has a
+  thickness too; the mean weights each sample by its node's share of the surface area. Node to
+  nearest node overestimates the surface-to-surface distance by about h^2 / (8 t) (h the edge
+  length, t the thickness): some 0.03 mm at 1.5 mm elements and 10 mm of wall.
+- ``helix_endo_deg``, ``helix_epi_deg``: the area-weighted mean helix angle of the nodes on
+  the endocardium and on the epicardium in the segment.
+
+Segments without samples (all of them when the build had no landmarks, whose labels are 0) have
+empty cells.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from fibers import meshtools, segments
+from fibers.types import ENDO, EPI, WallMesh
+
+COLUMNS = ("segment", "name", "volume_ml", "thickness_mean_mm", "thickness_min_mm",
+           "helix_endo_deg", "helix_epi_deg")
+N_SEGMENTS = 17
+
+
+def _node_areas(mesh: WallMesh, tag: int) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes (K,) of the faces with ``tag`` and their share (K,) mm^2 of the area (a third of each face)."""
+    faces = mesh.faces[mesh.face_tags == tag]
+    _, areas = meshtools.triangle_normals(mesh.points, faces)
+    share = np.bincount(faces.ravel(), weights=np.repeat(areas / 3.0, 3), minlength=len(mesh.points))
+    nodes = np.unique(faces)
+    return nodes, share[nodes]
+
+
+def _per_segment(labels, values, weights):
+    """Weighted mean and minimum (18,) of values per label 0..17, row 0 over all; NaN where empty."""
+    n = N_SEGMENTS + 1
+    w = np.bincount(labels, weights=weights, minlength=n)[:n]
+    s = np.bincount(labels, weights=weights * values, minlength=n)[:n]
+    mins = np.full(n, np.inf)
+    np.minimum.at(mins, labels, values)
+    if len(values):
+        w[0], s[0], mins[0] = weights.sum(), (weights * values).sum(), values.min()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(w > 0, s / np.where(w > 0, w, 1.0), np.nan)
+    return mean, np.where(np.isfinite(mins), mins, np.nan)
+
+
+def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarray, septum) -> list[dict]:
+    """Rows of ``segments.csv``.
+
+    Parameters
+    ----------
+    mesh : WallMesh
+    helix_angle : ndarray (N,), degrees
+        Nodal helix angle.
+    cell_labels : ndarray (M,) int
+        AHA segment of each tetrahedron (0 = not labelled).
+    septum : fibers.segments.Septum or None
+        Labels the surface nodes; None leaves them 0.
+
+    Returns
+    -------
+    list of dict
+        Keys `COLUMNS`; row 0 the whole wall, then segments 1-17. Floats are NaN where a segment
+        has no sample.
+    """
+    n = N_SEGMENTS + 1
+    volumes = np.abs(meshtools.signed_volumes(mesh.points, mesh.tets))
+    labels = np.asarray(cell_labels, np.int64)
+    volume = np.bincount(labels, weights=volumes, minlength=n)[:n] / 1000.0
+    volume[0] = volumes.sum() / 1000.0
+    endo, endo_w = _node_areas(mesh, ENDO)
+    epi, epi_w = _node_areas(mesh, EPI)
+    thick = np.concatenate([cKDTree(mesh.points[epi]).query(mesh.points[endo])[0],
+                            cKDTree(mesh.points[endo]).query(mesh.points[epi])[0]])
+    nodes = np.concatenate([endo, epi])
+    weights = np.concatenate([endo_w, epi_w])
+    node_labels = segments.label_points(mesh.points[nodes], mesh, septum).astype(np.int64)
+    t_mean, t_min = _per_segment(node_labels, thick, weights)
+    k = len(endo)
+    h_endo, _ = _per_segment(node_labels[:k], helix_angle[endo], endo_w)
+    h_epi, _ = _per_segment(node_labels[k:], helix_angle[epi], epi_w)
+    names = {0: "whole wall", **segments.SEGMENT_NAMES}
+    return [{"segment": s, "name": names[s], "volume_ml": float(volume[s]),
+             "thickness_mean_mm": float(t_mean[s]), "thickness_min_mm": float(t_min[s]),
+             "helix_endo_deg": float(h_endo[s]), "helix_epi_deg": float(h_epi[s])} for s in range(n)]
