@@ -42,7 +42,9 @@ from fibers.types import BASE, ENDO, EPI, LongAxis, WallMesh
 log = logging.getLogger(__name__)
 
 NODAL_FIELDS = ("transmural", "apicobasal", "circumferential", "e_rad", "e_long", "e_circ")
-SCALARS = ("transmural", "apicobasal", "circumferential", "helix_angle", "transverse_angle")
+OPTIONAL_NODAL = ("thickness_fraction",)   # needed by the laws with depth = "thickness"
+SCALARS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "frame_quality",
+           "helix_angle", "helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion")
 VECTORS = ("e_rad", "e_circ", "e_long", "fiber", "sheet", "sheet_normal")
 # nodal outputs of the build that the evaluator rebuilds rather than interpolates
 _REBUILT = set(SCALARS) | set(VECTORS)
@@ -99,7 +101,7 @@ class FieldEvaluator:
         -------
         dict of str to ndarray
             ``inside`` (K,) bool; ``transmural``, ``apicobasal``, ``circumferential`` (degrees),
-            ``helix_angle``, ``transverse_angle`` (degrees) (K,) float64, NaN outside;
+            ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle`` (degrees), ``dispersion``, ``thickness_fraction``, ``frame_quality`` (mm) (K,) float64, NaN outside;
             ``e_rad``, ``e_circ``, ``e_long``, ``fiber``, ``sheet``, ``sheet_normal`` (K, 3)
             unit, zero outside; ``aha_segment`` (K,) int8, 0 outside; ``tet`` (K,) int64, -1
             outside; and every further point field of the mesh (NaN outside).
@@ -269,7 +271,8 @@ def _case_of(manifest: dict, folder: Path):
 
 
 def _coordinates(point_data: dict, n_cells: int) -> CardiacCoordinates:
-    nodal = {k: np.ascontiguousarray(point_data[k], dtype=float) for k in NODAL_FIELDS}
+    nodal = {k: np.ascontiguousarray(point_data[k], dtype=float)
+             for k in NODAL_FIELDS + OPTIONAL_NODAL if k in point_data}
     empty = np.zeros((0, 3))
     return CardiacCoordinates(**nodal, cell_e_rad=empty, cell_e_long=empty, cell_e_circ=empty)
 
@@ -294,23 +297,15 @@ def _normal_to(direction: np.ndarray) -> np.ndarray:
 
 
 def _tag_faces(points, faces, transmural, axis: LongAxis):
-    """Tags (F,) of the boundary faces, and the long axis with its base plane refined.
+    """Tags (F,) of the boundary faces, and the long axis (the manifest's, stored exactly).
 
-    Base: faces facing along the axis and lying in the base plane (the manifest's rounded
-    plane, within 0.05 mm). Of the rest, faces whose nodes average a transmural value below
+    Base: faces facing along the axis and lying in the base plane (within 0.05 mm). Of the rest, faces whose nodes average a transmural value below
     1/2 are endocardial (the endocardium is held at 0, the epicardium at 1).
     """
     normals, areas = meshtools.triangle_normals(points, faces)
     depth = np.abs(segments.depth_below_base(points, axis))[faces].max(axis=1)
     base = (normals @ axis.direction > _BASE_NORMAL_COS) & (depth < 0.05)
     tags = np.where(base, BASE, np.where(transmural[faces].mean(axis=1) < 0.5, ENDO, EPI))
-    if base.any():
-        # the manifest rounds the axis to 1e-4; the flat base faces give it to round-off
-        d = (normals[base] * areas[base, None]).sum(axis=0)
-        d /= np.linalg.norm(d)
-        on_plane = points[np.unique(faces[base])].mean(axis=0)
-        centre = axis.base_centre + ((on_plane - axis.base_centre) @ d) * d
-        axis = LongAxis(base_centre=centre, direction=d, reference=_normal_to(d))
     return tags.astype(np.int64), axis
 
 

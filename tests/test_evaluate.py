@@ -25,9 +25,10 @@ from fibers.voxelize import WALL, CAVITY, grid_on_box, voxelize, wall_volume_ml
 RI, RO = 20.0, 30.0
 ROT = shells.random_rotation(7)
 SHIFT = np.array([12.0, -30.0, 85.0])
-LAW = FiberLaw()
+LAW = FiberLaw(depth="laplace", helix_frame="laplace")  # the rule the closed-form checks below use
 VECTORS = ("e_rad", "e_circ", "e_long", "fiber", "sheet", "sheet_normal")
-SCALARS = ("transmural", "apicobasal", "circumferential", "helix_angle", "transverse_angle")
+SCALARS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "helix_angle",
+           "helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion")
 
 
 def world(local):

@@ -301,6 +301,9 @@ def manifest(result, case, inputs: list) -> dict:
         # 1e-9 mm: fibers.open rebuilds the segment boundaries from these (at 1e-4 a few
         # points in 10^5 fell across a boundary)
         return None if p is None else [round(float(v), 9) for v in p]
+
+    def exact(p):  # the long axis to the last bit: fibers.open rebuilds the fiber rule on it
+        return [float(v) for v in p]
     septum = result.septum
     return {
         "tool": "fibers",
@@ -311,8 +314,8 @@ def manifest(result, case, inputs: list) -> dict:
         "landmarks": {"rv_insertion_anterior": pt(lm.rv_insertion_anterior),
                       "rv_insertion_inferior": pt(lm.rv_insertion_inferior), "source": lm.source,
                       "septal_arc_deg": None if septum is None else round(2 * float(septum.half_angle), 2)},
-        "long_axis": {"base_centre_mm": pt(result.mesh.axis.base_centre),
-                      "direction": pt(result.mesh.axis.direction),
+        "long_axis": {"base_centre_mm": exact(result.mesh.axis.base_centre),
+                      "direction": exact(result.mesh.axis.direction),
                       "endo_apex_mm": pt(result.mesh.endo_apex), "epi_apex_mm": pt(result.mesh.epi_apex)},
         # ties a later motion file (fibers strain) to this very mesh
         "mesh_checksum": _mesh_checksum(result.mesh),
