@@ -1,4 +1,4 @@
-"""Timing of point location and pool building (DESIGN.md section 6: 10^6 pool points with all
+"""Timing of point location and pool building (the speed targets: 10^6 pool points with all
 fields in a few seconds). Prints a table; asserts nothing.
 
 Run: ``.venv/bin/python bench/pools_bench.py [mesh_size_mm]``.

@@ -33,7 +33,7 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
         Target edge length.
     threads : int
         Threads for gmsh's HXT algorithm. One by default: with two threads the mesh changes
-        from run to run (DESIGN 2 wants the same bytes for the same input), and on the 2-core
+        from run to run (the same input must give the same bytes), and on the 2-core
         machine it was not faster (500k tetrahedra: 5.0 s on one thread, 7.2 s on two).
 
     Returns

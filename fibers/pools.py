@@ -1,6 +1,6 @@
 """Pools of sample points in the wall, the cavity, the background and on the surfaces.
 
-Pools (DESIGN.md section 3.4) and what each point carries:
+Pools (README, Output folder) and what each point carries:
 
 - ``myocardium``: uniform by volume in the wall. A tetrahedron is drawn with probability
   proportional to its volume and a point uniformly inside it. Fields at the point's own position:

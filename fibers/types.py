@@ -1,6 +1,6 @@
 """Small frozen dataclasses that flow from one stage to the next.
 
-Conventions (DESIGN.md section 4): points are ``(N, 3)`` float64 in mm in the scanner's world
+Conventions (README): points are ``(N, 3)`` float64 in mm in the scanner's world
 frame, tetrahedra ``(M, 4)`` int64, direction vectors unit length.
 """
 

@@ -18,7 +18,7 @@ def spheroid_shell(inner=(20.0, 20.0), outer=(30.0, 30.0), *, size=3.0, rotation
 
     ``inner`` and ``outer`` are (equatorial radius, polar half-axis) in mm, or (x half-axis,
     y half-axis, polar half-axis) for ellipsoids with elliptic cross-sections. Equal numbers
-    give spheres (the hemispherical shell of DESIGN section 5). ``rotation`` (3x3) and ``translation``
+    give spheres (the hemispherical shell, whose Laplace solution has a closed form). ``rotation`` (3x3) and ``translation``
     (3,) move the finished mesh rigidly into an oblique world frame.
     """
     import gmsh

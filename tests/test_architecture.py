@@ -41,7 +41,7 @@ def _assert_triad(f, s, n):
 
 
 def test_linear_laws():
-    # Default law +60 at the endocardium to -60 at the epicardium, linear (DESIGN section 4,
+    # Default law +60 at the endocardium to -60 at the epicardium, linear (README conventions,
     # Streeter et al. 1969 from memory); the endpoints and midpoint follow by hand.
     law = FiberLaw()
     np.testing.assert_allclose(architecture.helix_angle(law, [0.0, 0.5, 1.0, 0.25]),
@@ -52,7 +52,7 @@ def test_linear_laws():
 
 
 def test_helix_and_sheet_angles_measured_back_from_vectors():
-    # Definitions of DESIGN section 4: helix = atan2(f.e_long, f.e_circ); the sheet angle
+    # Definitions of the README's conventions: helix = atan2(f.e_long, f.e_circ); the sheet angle
     # turns the sheet about the fiber starting from e_rad, so
     # sheet = cos(b) e_rad + sin(b) (fiber x e_rad).
     e_rad, e_long, e_circ = _random_frames(2000, seed=1)
@@ -73,7 +73,7 @@ def test_helix_and_sheet_angles_measured_back_from_vectors():
 
 def test_zero_angles_give_the_frame_itself():
     # Helix 0 and sheet angle 0: fiber = e_circ, sheet = e_rad, sheet_normal = e_circ x e_rad =
-    # -e_long (DESIGN section 4 definitions).
+    # -e_long (the README's conventions).
     e_rad, e_long, e_circ = _random_frames(50, seed=4)
     law = FiberLaw(helix_endo=0.0, helix_epi=0.0)
     f, s, n, _, _ = architecture.orient(e_rad, e_long, e_circ, np.zeros(50), law)
@@ -110,7 +110,7 @@ def test_bad_profile_tables_are_input_errors(table, message):
 
 def test_orient_reorthonormalises_perturbed_frames():
     # Interpolated frames are neither unit nor orthogonal; after Gram-Schmidt the helix angle
-    # is measured in the cleaned frame (DESIGN section 4 definitions).
+    # is measured in the cleaned frame (the README's conventions).
     e_rad, e_long, e_circ = _random_frames(500, seed=6)
     rng = np.random.default_rng(7)
     noisy = [v * rng.uniform(0.3, 2.0, (500, 1)) + 0.2 * rng.normal(size=(500, 3))
@@ -143,7 +143,7 @@ def test_assign_on_a_mesh(mesh, coords):
     _assert_triad(arch.cell_fiber, arch.cell_sheet, arch.cell_sheet_normal)
     assert arch.cell_fiber.shape == (len(mesh.tets), 3)
     # Endocardial nodes carry the endocardial angle and epicardial ones the epicardial angle
-    # (DESIGN section 4 default law), in the short-axis frame the default lays it out in.
+    # (the README's default law), in the short-axis frame the default lays it out in.
     np.testing.assert_allclose(arch.helix_angle_sax[mesh.face_nodes(ENDO)], 60.0, atol=1e-9)
     np.testing.assert_allclose(arch.helix_angle_sax[mesh.face_nodes(EPI)], -60.0, atol=1e-9)
     measured = np.degrees(np.arctan2(np.einsum("ij,ij->i", arch.fiber, coords.e_long),

@@ -14,7 +14,7 @@ RI, RO = 20.0, 30.0
 def _exact_transmural(x):
     # Radial harmonic function with 0 at r = RI and 1 at r = RO. Its normal derivative on the
     # equatorial cut z = 0 is zero, so it also solves the problem with a natural condition on
-    # the base (DESIGN section 5; closed form).
+    # the base (closed form).
     r = np.linalg.norm(x, axis=-1)
     return (1 / RI - 1 / r) / (1 / RI - 1 / RO)
 
@@ -70,7 +70,7 @@ def test_transmural_converges_at_order_two_in_l2(sphere_shells):
 
 def test_dirichlet_values_hold(spheroid, spheroid_coords):
     c = spheroid_coords
-    # Definitions of DESIGN section 4; endo/epi values win on the base rim.
+    # Definitions of the README's conventions; endo/epi values win on the base rim.
     assert np.all(c.transmural[spheroid.face_nodes(ENDO)] == 0.0)
     assert np.all(c.transmural[spheroid.face_nodes(EPI)] == 1.0)
     assert np.all(c.apicobasal[spheroid.face_nodes(BASE)] == 1.0)

@@ -40,7 +40,7 @@ def test_degenerate_element_is_an_input_error():
 
 def test_stiffness_and_solution_match_scikit_fem(shell):
     # Reference: scikit-fem's P1 Laplace assembly, condensation and direct solve on the same
-    # mesh (DESIGN section 5).
+    # mesh.
     from skfem import Basis, ElementTetP1, MeshTet, asm, condense, solve
     from skfem.models.poisson import laplace
 
@@ -112,7 +112,7 @@ def test_conflicting_dirichlet_values_are_rejected(shell):
 
 
 def test_solve_is_repeatable_and_leaves_the_global_rng_alone(shell):
-    # Same input, same output bytes (DESIGN section 2); the AMG setup draws random vectors,
+    # Same input, same output bytes; the AMG setup draws random vectors,
     # which must neither vary between calls nor disturb the caller's generator.
     K = fem.stiffness(shell.points, shell.tets)
     nodes, values = _transmural_bc(shell)

@@ -52,7 +52,7 @@ def test_vtu_xdmf_msh_agree(built):
 
 
 def test_fields_are_unit_and_right_handed(built):
-    # Invariants (DESIGN section 4): unit vectors, e_circ = e_long x e_rad, sheet_normal = fiber x sheet.
+    # Invariants (README conventions): unit vectors, e_circ = e_long x e_rad, sheet_normal = fiber x sheet.
     m = meshio.read(built / "mesh.vtu")
     d = m.point_data
     for name in ("e_rad", "e_long", "e_circ", "fiber", "sheet", "sheet_normal"):
@@ -76,7 +76,7 @@ def test_manifest(built):
 
 
 def test_same_input_same_bytes(built, tmp_path):
-    # DESIGN section 2: same input and seed, same output bytes (meshing on one thread, seeded
+    # Same input and seed, same output bytes (meshing on one thread, seeded
     # multigrid set-up, seeded pools, fixed zip timestamps).
     again = tmp_path / "again"
     assert cli.main(["demo", "--out", str(again), "--mesh-size", "3.5", "--no-report"]) == 0

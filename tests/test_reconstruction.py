@@ -27,7 +27,7 @@ def rebuilt():
 
 def test_transmural_against_closed_form(rebuilt):
     # Laplace in a spherical shell cut at its equator: (1/ri - 1/r) / (1/ri - 1/ro) exactly
-    # (DESIGN section 5). Here the shell is rebuilt from 8 mm slices with 0.2 mm contour noise,
+    # (closed form). Here the shell is rebuilt from 8 mm slices with 0.2 mm contour noise,
     # so the error includes the surface fit and the extrapolated apex (issue #3 asks for
     # mean <= 0.01 and 99th percentile <= 0.03).
     lv, r = rebuilt
@@ -39,7 +39,7 @@ def test_transmural_against_closed_form(rebuilt):
 
 
 def test_helix_angle_in_the_analytic_frame(rebuilt):
-    # Helix angle (DESIGN section 4) measured in the sphere's own frame (e_r radial, e_c about
+    # Helix angle (README conventions) measured in the sphere's own frame (e_r radial, e_c about
     # the true axis, e_l = e_r x e_c), against the linear law at the closed-form depth, away
     # from the apex axis (issue #3: mean <= 2 deg, 95th percentile <= 5 deg).
     lv, r = rebuilt

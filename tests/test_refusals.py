@@ -1,4 +1,4 @@
-"""Bad input is refused with one clear line, exit status 2, and nothing written (DESIGN 3.3)."""
+"""Bad input is refused with one clear line, exit status 2, and nothing written."""
 
 from __future__ import annotations
 

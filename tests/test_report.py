@@ -172,7 +172,7 @@ def test_labels_of_the_build_follow_the_layout(built):
 
 def test_helix_measured_from_vectors():
     """atan2(f.e_long, f.e_circ) returns the angle of f = cos(a) e_circ + sin(a) e_long
-    (DESIGN.md section 4), and a fiber's sign does not change it (a fiber is a line)."""
+    (README conventions), and a fiber's sign does not change it (a fiber is a line)."""
     a = np.radians(np.array([-80.0, -60.0, -15.0, 0.0, 30.0, 60.0, 89.0]))
     e_circ = np.tile([0.0, 1.0, 0.0], (len(a), 1))
     e_long = np.tile([0.0, 0.0, 1.0], (len(a), 1))
@@ -183,7 +183,7 @@ def test_helix_measured_from_vectors():
 
 
 def test_law_from_the_manifest():
-    """The linear law and the table law read back from the parameters (DESIGN.md section 3.2)."""
+    """The linear law and the table law read back from the parameters (README, case file)."""
     linear = {"parameters": {"fibers": {"helix_endo": 50.0, "helix_epi": -70.0, "helix_profile": None}}}
     np.testing.assert_allclose(reading.helix_law(linear, [0.0, 0.25, 1.0, 1.5]), [50.0, 20.0, -70.0, -70.0])
     table = {"parameters": {"fibers": {"helix_profile": [[0.1, 60.0], [0.5, 0.0], [0.9, -60.0]]}}}

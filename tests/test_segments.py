@@ -133,7 +133,7 @@ def test_segment_volumes_equal_in_a_ring(mesh, septum):
 
 
 def test_ring_boundaries_at_thirds_and_apex(mesh, septum):
-    # Rings end at L/3, 2L/3 and L below the base (DESIGN section 4); 17 beyond the cavity apex.
+    # Rings end at L/3, 2L/3 and L below the base (README conventions); 17 beyond the cavity apex.
     phi = PHI_BIS - 30.0          # inside segment 3 / 9 / 14 (inferoseptal, septal)
     r = 0.5 * (INNER[0] + OUTER[0]) * 0.3
     zs = np.array([0.01, -0.01, -L / 3 + 1e-3, -L / 3 - 1e-3, -2 * L / 3 + 1e-3,
