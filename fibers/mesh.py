@@ -80,7 +80,8 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
         if wrong:
             tri[tag] = faces[:, ::-1]
 
-    points, tets, tri = _gmsh_volume(local, tri, endo_idx[-1], epi_idx[-1], size, threads)
+    points, tets, tri = fill_volume(local, tri, {"endo": endo_idx[-1], "epi": epi_idx[-1]},
+                                    {ENDO: ["endo"], EPI: ["epi"], BASE: ["endo", "epi"]}, size, threads)
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)
     faces, _ = meshtools.boundary_faces(tets)
@@ -171,37 +172,49 @@ def _stitch(ia, aa, ib, ab) -> np.ndarray:
     return tri[ok]
 
 
-def _gmsh_volume(local, tri, endo_rim, epi_rim, size, threads):
-    """Hand the tagged boundary to gmsh as discrete entities and fill the volume."""
+def fill_volume(local, tri: dict, rims: dict, bounds: dict, size: float, threads: int = 1, *,
+                name: str = "wall"):
+    """Hand a tagged closed boundary to gmsh as discrete entities and fill the volume.
+
+    Parameters
+    ----------
+    local : ndarray (P, 3), mm
+        Boundary node positions.
+    tri : dict of int to ndarray (F, 3)
+        Triangles per face tag, outward.
+    rims : dict of str to ndarray (R,)
+        Closed node loops where the surfaces meet (the base rings).
+    bounds : dict of int to list of str
+        For each face tag, the rims that bound it, in gmsh's entity order.
+
+    Returns
+    -------
+    points (N, 3), tets (M, 4), tri (dict of tag to (F, 3)) in the volume mesh's numbering.
+    """
     import gmsh
 
-    threads = max(1, int(threads))
     gmsh.initialize(interruptible=False)
     try:
         gmsh.option.setNumber("General.Terminal", 0)
-        gmsh.option.setNumber("General.NumThreads", threads)
-        gmsh.model.add("wall")
+        gmsh.option.setNumber("General.NumThreads", max(1, int(threads)))
+        gmsh.model.add(name)
         m = gmsh.model
-        rims = {}
+        curve = {}
         on_curve = np.zeros(len(local), bool)
-        for name, rim in (("endo", endo_rim), ("epi", epi_rim)):
+        for rim_name, rim in rims.items():
             c = m.addDiscreteEntity(1)
             m.mesh.addNodes(1, c, rim + 1, local[rim].ravel())
-            loop = np.column_stack([rim, np.roll(rim, -1)]) + 1
-            m.mesh.addElementsByType(c, 1, [], loop.ravel())
-            rims[name] = c
+            m.mesh.addElementsByType(c, 1, [], (np.column_stack([rim, np.roll(rim, -1)]) + 1).ravel())
+            curve[rim_name] = c
             on_curve[rim] = True
-        surf = {ENDO: m.addDiscreteEntity(2, -1, [rims["endo"]]),
-                EPI: m.addDiscreteEntity(2, -1, [rims["epi"]]),
-                BASE: m.addDiscreteEntity(2, -1, [rims["endo"], rims["epi"]])}
+        surf = {tag: m.addDiscreteEntity(2, -1, [curve[r] for r in names]) for tag, names in bounds.items()}
         for tag, faces in tri.items():
             nodes = np.unique(faces)
             nodes = nodes[~on_curve[nodes]]
             if len(nodes):
                 m.mesh.addNodes(2, surf[tag], nodes + 1, local[nodes].ravel())
             m.mesh.addElementsByType(surf[tag], 2, [], (faces + 1).ravel())
-        loop = m.geo.addSurfaceLoop(list(surf.values()))
-        vol = m.geo.addVolume([loop])
+        vol = m.geo.addVolume([m.geo.addSurfaceLoop(list(surf.values()))])
         m.geo.synchronize()
         m.addPhysicalGroup(3, [vol], 1, "wall")
         for tag, s in surf.items():

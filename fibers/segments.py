@@ -42,15 +42,9 @@ import numpy as np
 from fibers.config import Landmarks
 from fibers.errors import InputError
 from fibers.types import EPI, LongAxis, WallMesh
+from fibers.types import SEGMENT_NAMES as TYPE_SEGMENT_NAMES
 
-SEGMENT_NAMES = {
-    1: "basal anterior", 2: "basal anteroseptal", 3: "basal inferoseptal", 4: "basal inferior",
-    5: "basal inferolateral", 6: "basal anterolateral",
-    7: "mid anterior", 8: "mid anteroseptal", 9: "mid inferoseptal", 10: "mid inferior",
-    11: "mid inferolateral", 12: "mid anterolateral",
-    13: "apical anterior", 14: "apical septal", 15: "apical inferior", 16: "apical lateral",
-    17: "apex",
-}
+SEGMENT_NAMES = {k: v for k, v in TYPE_SEGMENT_NAMES.items() if k}  # 1-17
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,7 @@ from scipy.spatial import cKDTree
 
 from fibers import meshtools
 from fibers.biv.surfaces import RightSurfaces
-from fibers.mesh import ROW, _match_tags, _stitch_all, _surface_rings, tet_quality
+from fibers.mesh import ROW, _match_tags, _stitch_all, _surface_rings, fill_volume, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
 
@@ -90,7 +90,9 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
     tri[BASE] = _base_triangles(nodes, rims, size)
     local = nodes.points()
     tri = _orient_outward(local, tri, sheets)
-    points, tets, tri = _gmsh_volume(local, tri, rims, size, threads)
+    points, tets, tri = fill_volume(local, tri, rims, {ENDO: ["endo"], EPI: ["epi"], RV_ENDO: ["rv"],
+                                                       BASE: ["endo", "epi", "rv"]},
+                                    size, threads, name="biventricular wall")
     axis = lv.axis
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)
@@ -315,64 +317,6 @@ def _orient_outward(local, tri, sheets):
     free = free[:, ::-1] if radial_flux(free)[0] > 0 else free
     out[RV_ENDO] = np.concatenate([septal, free])
     return out
-
-
-def _gmsh_volume(local, tri, rims, size, threads):
-    """Hand the tagged closed boundary to gmsh as discrete entities and fill the volume."""
-    import gmsh
-
-    gmsh.initialize(interruptible=False)
-    try:
-        gmsh.option.setNumber("General.Terminal", 0)
-        gmsh.option.setNumber("General.NumThreads", max(1, int(threads)))
-        gmsh.model.add("biventricular wall")
-        m = gmsh.model
-        curve = {}
-        on_curve = np.zeros(len(local), bool)
-        for name, rim in rims.items():
-            c = m.addDiscreteEntity(1)
-            m.mesh.addNodes(1, c, rim + 1, local[rim].ravel())
-            m.mesh.addElementsByType(c, 1, [], (np.column_stack([rim, np.roll(rim, -1)]) + 1).ravel())
-            curve[name] = c
-            on_curve[rim] = True
-        surf = {ENDO: m.addDiscreteEntity(2, -1, [curve["endo"]]),
-                EPI: m.addDiscreteEntity(2, -1, [curve["epi"]]),
-                RV_ENDO: m.addDiscreteEntity(2, -1, [curve["rv"]]),
-                BASE: m.addDiscreteEntity(2, -1, [curve["endo"], curve["epi"], curve["rv"]])}
-        for tag, faces in tri.items():
-            own = np.unique(faces)
-            own = own[~on_curve[own]]
-            if len(own):
-                m.mesh.addNodes(2, surf[tag], own + 1, local[own].ravel())
-            m.mesh.addElementsByType(surf[tag], 2, [], (faces + 1).ravel())
-        vol = m.geo.addVolume([m.geo.addSurfaceLoop(list(surf.values()))])
-        m.geo.synchronize()
-        m.addPhysicalGroup(3, [vol], 1, "wall")
-        for tag, s in surf.items():
-            m.addPhysicalGroup(2, [s], tag)
-        gmsh.option.setNumber("Mesh.MeshSizeMin", 0.5 * size)
-        gmsh.option.setNumber("Mesh.MeshSizeMax", size)
-        gmsh.option.setNumber("Mesh.Algorithm3D", 10)
-        gmsh.option.setNumber("Mesh.Optimize", 1)
-        m.mesh.generate(3)
-        tags, coords, _ = m.mesh.getNodes()
-        _, elem = m.mesh.getElementsByType(4)
-        tri_back = {tag: m.mesh.getElementsByType(2, s)[1] for tag, s in surf.items()}
-    finally:
-        gmsh.finalize()
-    order = np.argsort(tags)
-    lookup = np.full(int(tags.max()) + 1, -1, dtype=np.int64)
-    lookup[tags[order]] = np.arange(len(tags))
-    points = coords.reshape(-1, 3)[order]
-    tets = lookup[elem.astype(np.int64)].reshape(-1, 4)
-    tri = {tag: lookup[t.astype(np.int64)].reshape(-1, 3) for tag, t in tri_back.items()}
-    used = np.zeros(len(points), bool)
-    used[tets.ravel()] = True
-    if not used.all():
-        remap = np.cumsum(used) - 1
-        points, tets = points[used], remap[tets]
-        tri = {tag: remap[t] for tag, t in tri.items()}
-    return points, tets, tri
 
 
 # -- regions and volumes ---------------------------------------------------------------------------

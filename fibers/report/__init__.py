@@ -71,15 +71,21 @@ def write_report(folder, *, result=None, manifest: dict | None = None, name: str
         facts = _draw_all(build, tmp)
         page = page_html(build, facts, timings, name or folder.name)
         (tmp / "index.html").write_text(page, encoding="utf-8")
-        target = folder / "report"
-        if target.exists():
-            shutil.rmtree(target)
-        tmp.rename(target)
+        target = place_report(tmp, folder)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     log.debug("report: %s", target / "index.html")
     return target / "index.html"
+
+
+def place_report(tmp: Path, folder: Path) -> Path:
+    """Move a finished report folder into ``folder/report``, replacing an older one."""
+    target = Path(folder) / "report"
+    if target.exists():
+        shutil.rmtree(target)
+    tmp.rename(target)
+    return target
 
 
 def redraw(folder) -> Path:

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from fibers.report import place_report
 from fibers.report.drawing import Scene, colourbar, pyplot, save_figure, show_image
 from fibers.report.page import CSS, _table
 from fibers.report.reading import CAUTION, RINGS, load_build, outer_surface
@@ -75,10 +76,7 @@ def write_strain_report(folder, run, *, name: str | None = None) -> Path:
             fig_bullseyes(run, tmp / FIGURES[2][0])
             fig_deformed(run, tmp / FIGURES[3][0])
         (tmp / "index.html").write_text(page_html(run, name or folder.name), encoding="utf-8")
-        target = folder / "report"
-        if target.exists():
-            shutil.rmtree(target)
-        tmp.rename(target)
+        target = place_report(tmp, folder)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
