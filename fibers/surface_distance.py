@@ -5,7 +5,9 @@ candidates of each point are the ``candidates`` triangles whose centroids lie ne
 k-d tree over the centroids); the distance to each candidate is the exact point-to-triangle
 distance, by the region test of Ericson, Real-Time Collision Detection (2005), section 5.1.5,
 from memory, written for arrays. On meshes of nearly even triangles the nearest triangle is
-always among the 12 nearest centroids.
+always among the few nearest centroids: on the demo ventricle at 0.97 and 2.5 mm, 6 candidates
+give the same distances as 12 to the last bit at every node (4 differ at 0.1 % of the nodes,
+by up to 4e-5 of the wall thickness), at half the time.
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ from scipy.spatial import cKDTree
 
 
 def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.ndarray, *,
-                        candidates: int = 12, block: int = 200_000) -> np.ndarray:
+                        candidates: int = 6, block: int = 200_000) -> np.ndarray:
     """Distance (K,) mm from each point to the nearest of the triangles.
 
     Parameters
