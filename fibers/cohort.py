@@ -283,7 +283,7 @@ def segment_thickness_mm(folder: Path):
                                 pools={"epi": reading.read_pool_arrays(folder, "epi", ("points", "aha_segment"))})
     except (FileNotFoundError, OSError, ValueError) as err:
         raise InputError(f"{folder}: cannot read surfaces.vtp or pools/epi.npz ({err}); build the folder again") from None
-    dist, seg = reading._thickness(light)  # the same function the report's bull's-eye uses
+    dist, seg = reading.wall_thickness(light)  # the same function the report's bull's-eye uses
     n = np.bincount(seg, minlength=18)[:18]
     mean = np.bincount(seg, weights=dist, minlength=18)[:18] / np.maximum(n, 1)
     return np.where(n > 0, mean, np.nan)

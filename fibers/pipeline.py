@@ -20,7 +20,6 @@ import numpy as np
 from fibers import architecture, budget, coordinates, mesh as mesh_stage, pools as pool_stage
 from fibers import quadratic, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
-from fibers.errors import InputError
 from fibers.io.folder import rearm_signals, signals_blocked
 from fibers.types import ENDO, EPI, BASE, RawContours
 
@@ -246,12 +245,8 @@ def build(case, out: str | Path, *, report: bool = True, include: dict | None = 
     """
     from fibers.io import folder
 
-    out = folder.resolve_out(out)
-    folder.check_parent_writable(out)
     own_inputs = [p for p in (case.path, case.contours, case.labelmap) if p is not None]
-    folder.check_out(out, inputs=own_inputs, force=force)
-    with folder.locked(out):
-        folder.check_out(out, inputs=own_inputs, force=force)  # again: it may have changed while we waited
+    with folder.guarded(out, inputs=own_inputs, force=force) as out:
         return _build_locked(case, out, report=report, include=include, force=force, inputs=own_inputs,
                              extra=extra)
 
@@ -270,13 +265,7 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
     result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes,
                  facts=facts)
 
-    tmp = folder.partial_path(out)
-    try:
-        try:
-            tmp.mkdir(parents=True)
-        except OSError as err:
-            raise InputError(f"cannot create the output folder beside {out} ({err.strerror}); "
-                             f"choose another --out") from None
+    with folder.partial(out, inputs=inputs, force=force) as tmp:
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
@@ -307,13 +296,8 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
         clock.timings["after_mesh"] = round(sum(clock.timings.get(k, 0.0) for k in AFTER_MESH), 4)
         manifest["timings_s"] = dict(clock.timings)
         # every file this build wrote, so a later build knows what it may replace
-        manifest["files"] = sorted(set(folder.files_in(tmp)) | {folder.MANIFEST})
+        manifest["files"] = folder.listing(tmp)
         outputs.write_manifest(tmp, manifest)
-        folder.check_out(out, inputs=inputs, force=force)  # a user may have added a file meanwhile
-        folder.replace(tmp, out)
-    except BaseException:
-        folder.remove(tmp)
-        raise
     log.info("%-13s %7.2f s  wrote %s%s", "total", clock.timings["total"], out,
              f" (open {out / 'report' / 'index.html'})" if report else "")
     return manifest
@@ -373,17 +357,3 @@ def _provenance(path: Path) -> dict:
     import hashlib
 
     return {"path": str(path), "sha256": hashlib.sha256(Path(path).read_bytes()).hexdigest()}
-
-
-def _check_out(out: Path, *, inputs=(), force: bool = False) -> None:
-    """Refuse, before any work, to replace a folder whose files are not all ours (`fibers.io.folder`)."""
-    from fibers.io import folder
-
-    folder.check_out(folder.resolve_out(out), inputs=inputs, force=force)
-
-
-def _replace(tmp: Path, out: Path) -> None:
-    """Move the finished folder into place, replacing an older build only at the very end."""
-    from fibers.io import folder
-
-    folder.replace(tmp, out)

@@ -319,30 +319,29 @@ def _check(value, spec, where, name):
             raise bad(f"expected three numbers [x, y, z] in mm, each within {MAX_COORDINATE_MM:g} mm of the origin")
         return [float(v) for v in value]
     if kind == "offsets":
-        rows = value if isinstance(value, list) else None
-        if (not rows or len(rows) < 2 or not all(isinstance(r, list) and len(r) == 2 for r in rows)
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for r in rows for v in r)):
-            raise bad("expected at least two [position, degrees] pairs")
-        pos = np.array([r[0] for r in rows], float)
-        angle = np.array([r[1] for r in rows], float)
-        if pos.min() < 0 or pos.max() > 1 or np.any(np.diff(pos) <= 0):
-            raise bad("positions must rise strictly from 0 (apex) to 1 (base)")
-        if np.abs(angle).max() > 90:
-            raise bad("offsets must lie between -90 and 90 degrees")
-        return [[float(a), float(b)] for a, b in rows]
+        return _angle_table(value, bad, pair="[position, degrees]",
+                            rise="positions must rise strictly from 0 (apex) to 1 (base)",
+                            within="offsets must lie between -90 and 90 degrees")
     if kind == "profile":
-        rows = value if isinstance(value, list) else None
-        if (not rows or len(rows) < 2 or not all(isinstance(r, list) and len(r) == 2 for r in rows)
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for r in rows for v in r)):
-            raise bad("expected at least two [depth, angle] pairs")
-        depth = np.array([r[0] for r in rows], float)
-        angle = np.array([r[1] for r in rows], float)
-        if depth.min() < 0 or depth.max() > 1 or np.any(np.diff(depth) <= 0):
-            raise bad("depths must rise strictly from 0 (endocardium) to 1 (epicardium)")
-        if np.abs(angle).max() > 90:
-            raise bad("angles must lie between -90 and 90 degrees")
-        return [[float(a), float(b)] for a, b in rows]
+        return _angle_table(value, bad, pair="[depth, angle]",
+                            rise="depths must rise strictly from 0 (endocardium) to 1 (epicardium)",
+                            within="angles must lie between -90 and 90 degrees")
     raise AssertionError(kind)
+
+
+def _angle_table(value, bad, *, pair: str, rise: str, within: str) -> list:
+    """A table of [x, angle] rows: x rising strictly within [0, 1], angles within +-90 degrees."""
+    rows = value if isinstance(value, list) else None
+    if (not rows or len(rows) < 2 or not all(isinstance(r, list) and len(r) == 2 for r in rows)
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for r in rows for v in r)):
+        raise bad(f"expected at least two {pair} pairs")
+    x = np.array([r[0] for r in rows], float)
+    angle = np.array([r[1] for r in rows], float)
+    if x.min() < 0 or x.max() > 1 or np.any(np.diff(x) <= 0):
+        raise bad(rise)
+    if np.abs(angle).max() > 90:
+        raise bad(within)
+    return [[float(a), float(b)] for a, b in rows]
 
 
 def _all_keys():

@@ -293,32 +293,48 @@ def replace(tmp: Path, out: Path) -> None:
 
 
 @contextmanager
-def staged(out, *, inputs=(), force: bool = False):
-    """Write a whole output folder (``fibers strain``, ``pools``, ``voxelize``) by the build's rules.
-
-    Checks ``out`` before any work (see `check_out`), holds the lock, yields the temporary folder
-    beside ``out`` to write into, and moves it into place when the block ends without error;
-    on any error or signal the temporary folder is removed. The writer lists its files in its
-    manifest with `listing`.
-    """
+def guarded(out, *, inputs=(), force: bool = False):
+    """Check ``out`` before any work (see `check_out`) and hold its lock; yields ``out`` resolved."""
     out = resolve_out(out)
     check_parent_writable(out)
     check_out(out, inputs=inputs, force=force)
     with locked(out):
-        check_out(out, inputs=inputs, force=force)
-        tmp = partial_path(out)
+        check_out(out, inputs=inputs, force=force)  # again: it may have changed while we waited
+        yield out
+
+
+@contextmanager
+def partial(out: Path, *, inputs=(), force: bool = False):
+    """Yield a temporary folder beside ``out`` (held by `guarded`) and move it into place.
+
+    The move happens when the block ends without error, after a last check that nobody added a
+    file to ``out`` meanwhile; on any error or signal the temporary folder is removed.
+    """
+    tmp = partial_path(out)
+    try:
         try:
-            try:
-                tmp.mkdir(parents=True)
-            except OSError as err:
-                raise InputError(f"cannot create the output folder beside {out} ({err.strerror}); "
-                                 "choose another --out") from None
+            tmp.mkdir(parents=True)
+        except OSError as err:
+            raise InputError(f"cannot create the output folder beside {out} ({err.strerror}); "
+                             "choose another --out") from None
+        yield tmp
+        check_out(out, inputs=inputs, force=force)  # a user may have added a file meanwhile
+        replace(tmp, out)
+    except BaseException:
+        remove(tmp)
+        raise
+
+
+@contextmanager
+def staged(out, *, inputs=(), force: bool = False):
+    """Write a whole output folder (``fibers strain``, ``pools``, ``voxelize``) by the build's rules.
+
+    `guarded` and `partial` in one: checks ``out``, holds the lock, yields the temporary folder
+    to write into. The writer lists its files in its manifest with `listing`.
+    """
+    with guarded(out, inputs=inputs, force=force) as out:
+        with partial(out, inputs=inputs, force=force) as tmp:
             yield tmp
-            check_out(out, inputs=inputs, force=force)  # a user may have added a file meanwhile
-            replace(tmp, out)
-        except BaseException:
-            remove(tmp)
-            raise
 
 
 def listing(tmp: Path) -> list[str]:

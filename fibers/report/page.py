@@ -74,7 +74,7 @@ def _num(value, digits: int = 4) -> str:
     return f"{v:,.0f}" if abs(v) >= 10 ** digits else f"{v:.{digits}g}"
 
 
-def _table(header: list[str], rows: list[list], *, numeric_from: int = 1) -> str:
+def html_table(header: list[str], rows: list[list], *, numeric_from: int = 1) -> str:
     head = "".join(f"<th>{_e(h)}</th>" for h in header)
     body = []
     for row in rows:
@@ -118,7 +118,7 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
             ["Tetrahedra", counts.get("tetrahedra")]]
     rows += [[f"Boundary faces: {k}", v] for k, v in (counts.get("faces") or {}).items()]
     rows += [[f"Pool points: {k}", v] for k, v in (counts.get("pools") or {}).items()]
-    parts.append('<h2 id="summary">Summary</h2>' + _table(["quantity", "value"], rows))
+    parts.append('<h2 id="summary">Summary</h2>' + html_table(["quantity", "value"], rows))
 
     mq = s.get("mesh_quality") or {}
     vq = facts.get("vtk_quality") or {}
@@ -128,7 +128,7 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     if "vtk_min_angle" in vq:
         qrows.append(["VTK min_angle above the exact minimum dihedral angle (fraction of cells)",
                       vq["vtk_min_angle"]["above_exact_fraction"]])
-    parts.append("<h3>Mesh quality</h3>" + _table(["measure", "value"], qrows) +
+    parts.append("<h3>Mesh quality</h3>" + html_table(["measure", "value"], qrows) +
                  '<p class="muted">The first rows come from the manifest (the build\'s own measures; its radius '
                  "ratio is normalised to 1 for a regular tetrahedron, 0 for a flat one); the VTK rows from "
                  "Verdict, whose radius ratio is 1 at best and grows for worse cells. The minimum dihedral angle is "
@@ -141,13 +141,13 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     rrows += [[f"slice {r['slice']} {r['structure']}", r["n"], r["rms_mm"], r["max_mm"], r["mean_mm"]]
               for r in sorted(facts.get("contour_rows", []), key=lambda r: (r["depth_mm"], r["structure"]))]
     parts.append("<h3>Fit residuals</h3>" +
-                 _table(["contour", "points", "RMS (mm)", "max |d| (mm)", "mean signed d (mm)"],
+                 html_table(["contour", "points", "RMS (mm)", "max |d| (mm)", "mean signed d (mm)"],
                         [r if len(r) == 5 else [r[0], r[1], "", "", ""] for r in rrows]) +
                  '<p class="muted">Per slice from surfaces.vtp (signed distance d of each contour point to its '
                  "fitted surface, positive outside), slices from base to apex.</p>")
     shifts = s.get("slice_shifts_mm") or {}
     if shifts:
-        parts.append("<h3>Slice shifts</h3>" + _table(
+        parts.append("<h3>Slice shifts</h3>" + html_table(
             ["slice", "in-plane breath-hold shift (mm, x y z)", "length (mm)"],
             [[f"slice {k}", " ".join(f"{c:+.2f}" for c in v), float(np.linalg.norm(v))] for k, v in shifts.items()]))
 
@@ -156,7 +156,7 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     keys = list(STAGES) + [k for k in timings if k not in STAGES]
     trows = [[k, timings[k] if k in timings else "measured after this page was written; see manifest.json"]
              for k in keys]
-    parts.append("<h3>Stage timings</h3>" + _table(["stage", "seconds"], trows))
+    parts.append("<h3>Stage timings</h3>" + html_table(["stage", "seconds"], trows))
 
     # segments
     parts.append('<h2 id="segments">Wall per AHA segment</h2>')
@@ -171,7 +171,7 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
         if seg["volume_ml"][0] > 0:
             srows.append(["0 not labelled", seg["volume_ml"][0], 100 * seg["volume_ml"][0] / seg["total_ml"],
                           seg["thickness_mm"][0], "", int(seg["n"][0])])
-        parts.append(_table(["segment", "wall volume (mL)", "share of wall (%)", "mean thickness (mm)",
+        parts.append(html_table(["segment", "wall volume (mL)", "share of wall (%)", "mean thickness (mm)",
                              "thickness 10th - 90th percentile (mm)", "epicardial points"], srows))
         layout = facts.get("layout")
         if layout:
@@ -187,7 +187,7 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     hrows = [[r["ring"], r["n"], r["mean_abs_deg"], r["max_abs_deg"], r["sax_mean_abs_deg"], r["sax_p99_abs_deg"]]
              for r in facts.get("helix_rings", [])]
     parts.append('<h2 id="helix">Helix angle against the law</h2>' +
-                 _table(["ring", "wall pool points", "Laplace frame: mean |angle - law| (deg)",
+                 html_table(["ring", "wall pool points", "Laplace frame: mean |angle - law| (deg)",
                          "Laplace frame: max (deg)", "short axis: mean |angle - law| (deg)",
                          "short axis: 99th percentile (deg)"], hrows) +
                  '<p class="muted">Laplace frame: atan2(fiber.e_long, fiber.e_circ), the helix_angle field; short '
@@ -218,21 +218,21 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
             prow += [[f"{section}.{k}", json.dumps(v)] for k, v in values.items()]
         else:
             prow.append([section, json.dumps(values)])
-    parts.append('<h2 id="parameters">Resolved parameters</h2>' + _table(["parameter", "value"], prow))
+    parts.append('<h2 id="parameters">Resolved parameters</h2>' + html_table(["parameter", "value"], prow))
     la = m.get("long_axis") or {}
     lm = m.get("landmarks") or {}
     geo = [[f"long_axis.{k}", json.dumps(v)] for k, v in la.items()] + [[f"landmarks.{k}", json.dumps(v)] for k, v in lm.items()]
-    parts.append("<h3>Long axis and landmarks</h3>" + _table(["item", "value"], geo))
+    parts.append("<h3>Long axis and landmarks</h3>" + html_table(["item", "value"], geo))
 
     # provenance
     inputs = [[Path(i.get("path", "?")).name, i.get("path", ""), i.get("sha256", "")] for i in m.get("inputs") or []]
     parts.append('<h2 id="provenance">Provenance</h2>' + "<h3>Inputs</h3>" +
-                 _table(["input", "path at build time", "sha256"], inputs))
+                 html_table(["input", "path at build time", "sha256"], inputs))
     versions = [["fibers", m.get("version", "")]] + [[k, v] for k, v in (m.get("versions") or {}).items()]
     versions += _report_versions()
-    parts.append("<h3>Versions</h3>" + _table(["package", "version"], versions))
+    parts.append("<h3>Versions</h3>" + html_table(["package", "version"], versions))
     conv = [[k, json.dumps(v) if not isinstance(v, str) else v] for k, v in (m.get("conventions") or {}).items()]
-    parts.append("<h3>Conventions</h3>" + _table(["item", "meaning"], conv))
+    parts.append("<h3>Conventions</h3>" + html_table(["item", "meaning"], conv))
     parts.append(f'<p class="caution">{_e(CAUTION)}</p></body></html>\n')
     return "\n".join(parts)
 
@@ -243,7 +243,7 @@ def _slice_table(s: dict) -> str:
              "yes" if r.get("counted") else "no", r.get("reason", "")] for r in s.get("slices") or []]
     if not rows:
         return ""
-    html = "<h3>Slices counted</h3>" + _table(["slice", "wall around the cavity", "counted", "reason"], rows,
+    html = "<h3>Slices counted</h3>" + html_table(["slice", "wall around the cavity", "counted", "reason"], rows,
                                               numeric_from=4)
     notes = []
     base = s.get("base") or {}

@@ -217,7 +217,7 @@ def surface_part(build: Build, tag: int):
     return outer_surface(s.extract_cells(idx))
 
 
-def _thickness(build: Build) -> tuple[np.ndarray, np.ndarray]:
+def wall_thickness(build: Build) -> tuple[np.ndarray, np.ndarray]:
     """Distances (K,) mm from the epicardial pool points to the endocardial surface, and labels (K,)."""
     epi = build.pools.get("epi") or {}
     if "points" not in epi:
@@ -233,7 +233,7 @@ def segment_table(build: Build) -> dict:
     """Wall volume and thickness per segment 0-17 (0: not labelled)."""
     labels = np.asarray(build.mesh.cell_data["aha_segment"], int)
     vol = np.bincount(labels, weights=_tet_volumes(build.mesh), minlength=18)[:18] / 1000.0
-    dist, seg = _thickness(build)
+    dist, seg = wall_thickness(build)
     n = np.bincount(seg, minlength=18)[:18]
     mean = np.bincount(seg, weights=dist, minlength=18)[:18] / np.maximum(n, 1)
     order = np.lexsort((dist, seg))

@@ -10,7 +10,7 @@ from fibers.report.drawing import pyplot, save_figure
 from fibers.report.reading import Build, INK, bullseye_place, expected_segment, segment_table
 
 
-def _wedge_patches(values: np.ndarray, cmap, norm, ax, fmt):
+def wedge_patches(values: np.ndarray, cmap, norm, ax, fmt):
     """Draw the 17 sectors of the standard bull's-eye coloured by values[1..17]."""
     from matplotlib.patches import Wedge
 
@@ -84,7 +84,7 @@ def fig_bullseye(build: Build, path: Path) -> dict:
             lo, hi = lo - 0.5, hi + 0.5
         cmap = mpl.colormaps[cmap_name]
         norm = mpl.colors.Normalize(lo, hi, clip=True)
-        _wedge_patches(values, cmap, norm, ax, fmt)
+        wedge_patches(values, cmap, norm, ax, fmt)
         ax.set_title(title)
         low = np.nanmin(values[1:18]) < lo - 1e-9
         cb = fig.colorbar(mpl.cm.ScalarMappable(norm=mpl.colors.Normalize(lo, hi), cmap=cmap), ax=ax, shrink=0.72,

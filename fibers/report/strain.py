@@ -19,9 +19,9 @@ import numpy as np
 
 from fibers.report import place_report
 from fibers.report.drawing import Scene, colourbar, pyplot, save_figure, show_image
-from fibers.report.page import CSS, _table
+from fibers.report.page import CSS, html_table
 from fibers.report.reading import CAUTION, RINGS, load_build, outer_surface
-from fibers.report.segments import _wedge_patches
+from fibers.report.segments import wedge_patches
 
 CURVES = ("strain_cc", "strain_ll", "strain_rr", "strain_ff")
 LABELS = {"strain_cc": "circumferential strain", "strain_ll": "longitudinal strain",
@@ -168,7 +168,7 @@ def fig_bullseyes(run, path: Path) -> None:
             m = max(abs(lo), abs(hi))
             lo, hi = -m, m
         norm = mpl.colors.Normalize(lo, hi, clip=True)
-        _wedge_patches(v, cmap, norm, ax, lambda x: f"{x:.1f}")
+        wedge_patches(v, cmap, norm, ax, lambda x: f"{x:.1f}")
         ax.set_title(title, fontsize=10)
         colourbar(fig, ax, cmap, lo, hi, "%", shrink=0.7)
     fig.suptitle("Per AHA segment (Cerqueira et al. 2002 layout; viewed from the apex)")
@@ -230,7 +230,7 @@ def page_html(run, name: str) -> str:
             ["Segment mean J: largest |mean J - 1|", inc["segment_mean_J_max_deviation"]],
             ["Recovered nodal mean |J - 1|, worst frame", inc["nodal_mean_abs_J_minus_1"]["max_over_frames"]],
             ["Inverted cells (J <= 0), all frames", int(study.inverted.sum())]]
-    parts.append('<h2>Summary</h2>' + _table(["quantity", "value"], rows))
+    parts.append('<h2>Summary</h2>' + html_table(["quantity", "value"], rows))
     header = ["segment", "volume (mL)"] + [f"peak {q}" for q in CURVES] + ["frame of peak strain_cc"]
     peak = s["peaks"]
     by = {q: {r["segment"]: r for r in peak[q]["segments"]} for q in CURVES}
@@ -239,7 +239,7 @@ def page_html(run, name: str) -> str:
         label = "0 whole wall" if seg == 0 else f"{seg} {SEGMENT_NAMES.get(seg, '')}"
         srows.append([label, float(study.volume_ml[seg])] + [by[q][seg]["value"] for q in CURVES]
                      + [by["strain_cc"][seg]["frame"]])
-    parts.append('<h2>Peaks per segment</h2>' + _table(header, srows) +
+    parts.append('<h2>Peaks per segment</h2>' + html_table(header, srows) +
                  '<p class="muted">Engineering strain, stretch - 1 (dimensionless); most negative for cc, ll, ff and '
                  "most positive for rr over the frames. Full tables: segments.csv and summary.json.</p>")
     parts.append("<h2>Figures</h2>")
@@ -248,7 +248,7 @@ def page_html(run, name: str) -> str:
                      f"<figcaption>{e(CAPTIONS[file])}</figcaption></figure>")
     from fibers.strain import CONVENTIONS
 
-    parts.append("<h2>Conventions</h2>" + _table(["item", "meaning"], [[k, v] for k, v in CONVENTIONS.items()]))
+    parts.append("<h2>Conventions</h2>" + html_table(["item", "meaning"], [[k, v] for k, v in CONVENTIONS.items()]))
     warn = run.warnings
     parts.append("<h2>Warnings</h2>" + ("<ul>" + "".join(f'<li class="warn">{e(w)}</li>' for w in warn) + "</ul>"
                                          if warn else '<p class="muted">No warnings.</p>'))
