@@ -1,6 +1,6 @@
 """Writing the output folder (the table in the README): mesh files, surfaces, pools, manifest.
 
-meshio owns the mesh formats; this module only maps our names onto its structures.
+meshio writes the XDMF and gmsh formats; VTK XML goes through fibers.io.vtkxml. This module maps our names onto them.
 """
 
 from __future__ import annotations
@@ -150,32 +150,11 @@ def field_lines() -> dict:
 
 
 def write_vtu(path: Path, fem: FemMesh) -> None:
-    """mesh.vtu with the convention lines as field data ``conventions`` (UTF-8 JSON bytes).
+    """mesh.vtu with the convention lines as field data ``conventions`` (UTF-8 JSON bytes)."""
+    from fibers.io.vtkxml import write_grid
 
-    meshio writes no field data to VTU, and its reader refuses VTK's string arrays, so the text
-    travels as one UInt8 array, spliced in as the grid's first child where VTK expects it.
-    """
-    import meshio
-
-    mesh = meshio.Mesh(fem.points, [(fem.types[0], fem.cells)], point_data=fem.point_data,
-                       cell_data={k: [v] for k, v in fem.cell_data.items()})
-    mesh.write(path, compression=None)  # meshio's writer wants a file name, not a buffer
-    text = Path(path).read_bytes()
-    anchor = b"<UnstructuredGrid>"
-    at = text.index(anchor) + len(anchor)
-    Path(path).write_bytes(text[:at] + _vtu_field_data({"conventions": field_lines()}) + text[at:])
-
-
-def _vtu_field_data(texts: dict) -> bytes:
-    import base64
-
-    arrays = []
-    for name, value in texts.items():
-        data = json.dumps(value, indent=1).encode("utf-8")
-        encoded = base64.b64encode(np.uint32(len(data)).tobytes() + data).decode("ascii")
-        arrays.append(f'<DataArray type="UInt8" Name="{name}" NumberOfTuples="{len(data)}" '
-                      f'format="binary">{encoded}</DataArray>')
-    return ("<FieldData>" + "".join(arrays) + "</FieldData>").encode("ascii")
+    write_grid(path, fem.points, fem.cells, fem.types[0], point_data=fem.point_data, cell_data=fem.cell_data,
+               field_data={"conventions": field_lines()})
 
 
 def write_xdmf(folder: Path, fem: FemMesh) -> None:
@@ -254,7 +233,7 @@ def write_msh(path: Path, fem: FemMesh) -> None:
 
 def write_surfaces(path: Path, result) -> None:
     """The fitted surfaces (as the mesh's tagged boundary) and the input contours with residuals."""
-    import pyvista as pv
+    from fibers.io.vtkxml import write_polydata
 
     wall, surf = result.mesh, result.surfaces
     used = np.unique(wall.faces)
@@ -272,21 +251,18 @@ def write_surfaces(path: Path, result) -> None:
             idx = next_index + np.arange(len(c))
             next_index += len(c)
             pts.append(c)
-            lines.append(np.concatenate([[len(c) + 1], idx, idx[:1]]))
+            lines.append(np.concatenate([idx, idx[:1]]))  # closed
             residual.append(surf.distance(s, c))
             slice_ids.append(np.full(len(c), sl.slice_id))
             structure.append(np.full(len(c), code))
-    points = np.concatenate(pts)
-    poly = pv.PolyData(points, faces=np.column_stack([np.full(len(tri), 3), tri]).ravel(),
-                       lines=np.concatenate(lines))
     n_lines = len(lines)
-    # VTK orders poly-data cells as verts, lines, polys
-    poly.cell_data["face_tag"] = np.concatenate([np.zeros(n_lines, np.int32), wall.face_tags.astype(np.int32)])
-    poly.cell_data["is_contour"] = np.concatenate([np.ones(n_lines, np.int8), np.zeros(len(tri), np.int8)])
-    poly.point_data["residual_mm"] = np.concatenate([np.zeros(n0), *residual])
-    poly.point_data["slice"] = np.concatenate([np.full(n0, -1), *slice_ids]).astype(np.int32)
-    poly.point_data["contour_structure"] = np.concatenate([np.zeros(n0, np.int8), *structure]).astype(np.int8)
-    poly.save(path, compression=None)
+    # VTK numbers poly-data cells as verts, lines, polys
+    write_polydata(path, np.concatenate(pts), lines=lines, triangles=tri, cell_data={
+        "face_tag": np.concatenate([np.zeros(n_lines, np.int32), wall.face_tags.astype(np.int32)]),
+        "is_contour": np.concatenate([np.ones(n_lines, np.int8), np.zeros(len(tri), np.int8)])}, point_data={
+        "residual_mm": np.concatenate([np.zeros(n0), *residual]),
+        "slice": np.concatenate([np.full(n0, -1), *slice_ids]).astype(np.int32),
+        "contour_structure": np.concatenate([np.zeros(n0, np.int8), *structure]).astype(np.int8)})
 
 
 def manifest(result, case, inputs: list) -> dict:

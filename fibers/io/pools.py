@@ -68,20 +68,21 @@ def read_metadata(path) -> dict:
 
 
 def _write_vtp(path: Path, arrays: dict) -> None:
-    import pyvista as pv
+    from fibers.io.vtkxml import write_polydata
 
-    cloud = pv.PolyData(np.asarray(arrays["points"], float))
-    n = len(arrays["points"])
+    points = np.asarray(arrays["points"], float)
+    n = len(points)
+    point_data, texts = {}, {}
     for key, value in arrays.items():
         value = np.asarray(value)
         if key == "points":
             continue
         if value.dtype.kind == "U":
-            cloud.field_data[key] = value
+            texts[key] = value.tolist()
         elif len(value) == n:
             # VTK has no int8 reader everywhere; widen small integers for viewers.
-            cloud.point_data[key] = value.astype(np.int32) if value.dtype.kind in "iub" else value
-    cloud.save(str(path), binary=True, compression=None)  # zlib tripled the time
+            point_data[key] = value.astype(np.int32) if value.dtype.kind in "iub" else value
+    write_polydata(path, points, vertices=True, point_data=point_data, field_data=texts)
 
 
 def write_pools(folder, pools: dict, *, vtp: bool = True) -> list[Path]:
