@@ -43,6 +43,7 @@ import numpy as np
 from fibers.config import FiberLaw
 from fibers.coordinates import CardiacCoordinates
 from fibers.errors import InputError
+from fibers.vectors import cross
 
 # |axis x n| between these values blends the short-axis direction into the direction about
 # the axis at the point (sin 11.5 and sin 30 degrees).
@@ -214,9 +215,9 @@ def short_axis_frame(normal, points, axis, *, fallback) -> tuple[np.ndarray, np.
     """
     d = np.asarray(axis.direction, float)
     d = d / np.linalg.norm(d)
-    sax = np.cross(d, normal)
+    sax = cross(d, normal)
     s = _rows(sax)
-    about = np.cross(d, np.asarray(points, float).reshape(-1, 3) - axis.base_centre)
+    about = cross(d, np.asarray(points, float).reshape(-1, 3) - axis.base_centre)
     about -= np.einsum("ij,ij->i", about, normal)[:, None] * normal
     about = _unit_or(about, fallback)
     t = np.clip((s - _SAX_LOW) / (_SAX_HIGH - _SAX_LOW), 0.0, 1.0)
@@ -229,7 +230,7 @@ def short_axis_frame(normal, points, axis, *, fallback) -> tuple[np.ndarray, np.
         c[weak] = np.where(w[weak] >= 0.5, sax[weak] / np.maximum(s[weak], 1e-300)[:, None],
                            about[weak])
     c = _unit_or(c, fallback)
-    return c, np.cross(normal, c)
+    return c, cross(normal, c)
 
 
 def triad_from_angles(normal, circ, long, helix_deg, imbrication_deg, sheet_deg):
@@ -242,8 +243,8 @@ def triad_from_angles(normal, circ, long, helix_deg, imbrication_deg, sheet_deg)
     # s0: the unit part of the normal orthogonal to the fiber, exactly, without a division
     s0 = np.cos(i) * normal - np.sin(i) * in_plane
     # Rodrigues' rotation of s0 about the fiber; s0 is orthogonal to it.
-    sheet = np.cos(b) * s0 + np.sin(b) * np.cross(fiber, s0)
-    return fiber, sheet, np.cross(fiber, sheet)
+    sheet = np.cos(b) * s0 + np.sin(b) * cross(fiber, s0)
+    return fiber, sheet, cross(fiber, sheet)
 
 
 def orient(e_rad, e_long, e_circ, depth, law: FiberLaw):
@@ -375,14 +376,14 @@ def _orthonormal_frame(e_rad, e_long, e_circ):
                          "cardiac coordinates")
     r, lg, c = arrays
     # e_rad = e_circ x e_long in a right-handed frame; use it where the given e_rad is zero.
-    r = _unit_rows(r, np.cross(c, lg))
+    r = _unit_rows(r, cross(c, lg))
     lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
     # e_long = e_rad x e_circ; use it where the given e_long is parallel to e_rad.
-    alt = np.cross(r, c)
+    alt = cross(r, c)
     lg = _unit_rows(lg, alt)
     lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
     lg = _unit_rows(lg, _any_orthogonal(r))
-    return r, lg, np.cross(lg, r)
+    return r, lg, cross(lg, r)
 
 
 def _unit_rows(v, fallback):
@@ -402,5 +403,5 @@ def _unit_rows(v, fallback):
 def _any_orthogonal(r):
     """A unit vector orthogonal to each unit row of ``r``."""
     pick = np.where((np.abs(r[:, 0]) < 0.9)[:, None], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0])
-    v = np.cross(r, pick)
+    v = cross(r, pick)
     return v / np.linalg.norm(v, axis=1)[:, None]

@@ -47,6 +47,7 @@ from fibers.config import Box, FiberLaw, PoolSettings
 from fibers.errors import InputError
 from fibers.locate import Locator
 from fibers.types import BASE, ENDO, EPI, WallMesh
+from fibers.vectors import cross
 
 log = logging.getLogger(__name__)
 
@@ -167,7 +168,7 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
     e_rad = _unit_rows(interp(coords.e_rad))
     e_long = interp(coords.e_long)
     e_long = _unit_rows(e_long - np.einsum("ij,ij->i", e_long, e_rad)[:, None] * e_rad)
-    e_circ = np.cross(e_long, e_rad)
+    e_circ = cross(e_long, e_rad)
     out = {"transmural": transmural, "apicobasal": apicobasal, "circumferential": circ,
            "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}
     if coords.thickness_fraction is not None:

@@ -35,6 +35,7 @@ import numpy as np
 
 from fibers import meshtools
 from fibers.types import BASE, ENDO, EPI, FACE_TAG_NAMES, WallMesh
+from fibers.vectors import cross
 
 log = logging.getLogger(__name__)
 
@@ -328,7 +329,7 @@ def enclosed_volume_mm3(points: np.ndarray, faces6: np.ndarray, origin: np.ndarr
     x = points[faces6] - origin                                                  # (F, 6, 3)
     pos = np.einsum("qk,fkd->fqd", N, x)
     tangent = np.einsum("qke,fkd->fqed", dN, x)
-    flux = np.einsum("fqd,fqd->fq", pos, np.cross(tangent[:, :, 0], tangent[:, :, 1]))
+    flux = np.einsum("fqd,fqd->fq", pos, cross(tangent[:, :, 0], tangent[:, :, 1]))
     return float((flux @ w).sum() / 3.0)
 
 

@@ -43,6 +43,7 @@ from fibers.config import Landmarks
 from fibers.errors import InputError
 from fibers.types import EPI, LongAxis, WallMesh
 from fibers.types import SEGMENT_NAMES as TYPE_SEGMENT_NAMES
+from fibers.vectors import cross
 
 SEGMENT_NAMES = {k: v for k, v in TYPE_SEGMENT_NAMES.items() if k}  # 1-17
 
@@ -91,14 +92,14 @@ def depth_below_base(points: np.ndarray, axis: LongAxis) -> np.ndarray:
 def _point_triangle_distance(p: np.ndarray, tri: np.ndarray) -> np.ndarray:
     """Distances (F,) mm from one point (3,) to triangles (F, 3, 3)."""
     a, b, c = tri[:, 0], tri[:, 1], tri[:, 2]
-    n = np.cross(b - a, c - a)
+    n = cross(b - a, c - a)
     n /= np.maximum(np.linalg.norm(n, axis=1), 1e-300)[:, None]
     off = np.einsum("ij,ij->i", p - a, n)
     q = p - off[:, None] * n
     # The foot of the perpendicular is inside iff it is on the inner side of all three edges.
     inside = np.ones(len(tri), bool)
     for u, v in ((a, b), (b, c), (c, a)):
-        inside &= np.einsum("ij,ij->i", np.cross(v - u, q - u), n) >= 0
+        inside &= np.einsum("ij,ij->i", cross(v - u, q - u), n) >= 0
     edge = np.full(len(tri), np.inf)
     for u, v in ((a, b), (b, c), (c, a)):
         e = v - u
@@ -183,12 +184,12 @@ def locate_septum(mesh: WallMesh, landmarks: Landmarks | None, *, max_surface_di
     # Seen from the apex (as short-axis images are shown), anterior -> septum -> inferior runs
     # counter-clockwise (Cerqueira et al. 2002, bull's-eye layout; viewing side from memory),
     # i.e. clockwise about the apex-to-base axis: toward_inferior = bisector x direction.
-    if toward @ np.cross(bisector, d) < 0:
+    if toward @ cross(bisector, d) < 0:
         warnings.warn(
             f"the right-ventricular insertion points ({where}) run anterior -> septum -> inferior "
             "clockwise as seen from the apex, the mirror of the usual anatomy: check that the two "
             "points are not swapped; segments follow the points as given", stacklevel=2)
-    sign = 1.0 if ua @ np.cross(d, bisector) >= 0 else -1.0
+    sign = 1.0 if ua @ cross(d, bisector) >= 0 else -1.0
     return Septum(bisector=bisector, toward_inferior=toward, half_angle=arc / 2.0,
                   anterior=np.asarray(landmarks.rv_insertion_anterior, float).reshape(3),
                   inferior=np.asarray(landmarks.rv_insertion_inferior, float).reshape(3),
@@ -209,7 +210,7 @@ def septal_angle(points: np.ndarray, axis: LongAxis, septum: Septum) -> np.ndarr
     septum : Septum
     """
     r = np.asarray(points, float).reshape(-1, 3) - axis.base_centre
-    second = np.cross(_unit(axis.direction), septum.bisector)
+    second = cross(_unit(axis.direction), septum.bisector)
     deg = np.degrees(np.arctan2(r @ second, r @ septum.bisector))
     # arctan2 gives (-180, 180]; fold +180 onto -180 so sectors are half-open [lo, hi).
     return np.where(deg >= 180.0, deg - 360.0, deg)

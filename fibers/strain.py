@@ -36,6 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from fibers.vectors import cross
+
 # the reference directions, by the one-letter names used in the quantity names
 DIRECTIONS = {"r": "e_rad", "c": "e_circ", "l": "e_long", "f": "fiber", "s": "sheet", "n": "sheet_normal"}
 NORMAL = ("rr", "cc", "ll", "ff", "ss", "nn")
@@ -272,7 +274,7 @@ def orthonormal_frames(e_rad: np.ndarray, e_long: np.ndarray) -> dict[str, np.nd
     """
     r = _unit(e_rad)
     l = _unit(e_long - np.einsum("mi,mi->m", e_long, r)[:, None] * r)
-    return {"e_rad": r, "e_circ": np.cross(l, r), "e_long": l}
+    return {"e_rad": r, "e_circ": cross(l, r), "e_long": l}
 
 
 def cell_frames(tets: np.ndarray, point_fields: dict, cell_fields: dict | None = None) -> dict[str, np.ndarray]:
@@ -293,7 +295,7 @@ def cell_frames(tets: np.ndarray, point_fields: dict, cell_fields: dict | None =
     elif "fiber" in mean and "sheet" in mean:
         f = _unit(mean["fiber"])
         s = _unit(mean["sheet"] - np.einsum("mi,mi->m", mean["sheet"], f)[:, None] * f)
-        frames.update(fiber=f, sheet=s, sheet_normal=np.cross(f, s))
+        frames.update(fiber=f, sheet=s, sheet_normal=cross(f, s))
     return frames
 
 

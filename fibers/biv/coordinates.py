@@ -75,6 +75,7 @@ from fibers.biv.mesh import RV_ENDO, BiVMesh
 from fibers.coordinates import CardiacCoordinates, _even_along_axis, apex_patch, frame_quality
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI
+from fibers.vectors import cross
 
 
 @dataclass(frozen=True)
@@ -220,7 +221,7 @@ def _imaging_angles(fiber, e_rad, points, axis):
     ``imbrication_angle``: the fiber's angle out of that plane. Folded to [-90, 90): a fiber is
     a line.
     """
-    fallback = np.cross(e_rad, np.eye(3)[np.argmin(np.abs(e_rad), axis=1)])
+    fallback = cross(e_rad, np.eye(3)[np.argmin(np.abs(e_rad), axis=1)])
     fallback /= np.linalg.norm(fallback, axis=1)[:, None]
     c, l = short_axis_frame(e_rad, points, axis, fallback=fallback)
     sign = np.where(np.einsum("ij,ij->i", fiber, c) < 0, -1.0, 1.0)[:, None]
@@ -280,10 +281,10 @@ def _frames_and_triads(gradient, phi_lv, phi_rv, phi_epi, psi, d, law: BiVLaw, a
     plain = bislerp(bislerp(orient(frame["lv"], zero, zero), orient(frame["rv"], zero, zero), d),
                     orient(frame["epi"], zero, zero), e)
     e_circ, e_rad = plain[:, :, 0], plain[:, :, 1]
-    e_long = np.cross(e_rad, e_circ)
+    e_long = cross(e_rad, e_circ)
     e_long[np.einsum("ij,ij->i", e_long, g_psi) < 0] *= -1.0
     e_rad[np.einsum("ij,ij->i", e_rad, g_epi + g_d) < 0] *= -1.0
-    e_circ = np.cross(e_long, e_rad)
+    e_circ = cross(e_long, e_rad)
 
     # sheets: turned about the final fiber from e_rad by the sheet law (module docstring)
     side = np.einsum("ij,ij->i", e_rad, _unit(g_rv, e_rad))  # +1 septal side of the RV, -1 free wall
@@ -291,13 +292,13 @@ def _frames_and_triads(gradient, phi_lv, phi_rv, phi_epi, psi, d, law: BiVLaw, a
     beta = np.radians((1 - e) * b_endo + e * blend(law.lv_sheet_epi, law.rv_sheet_epi))
     s0 = e_rad - np.einsum("ij,ij->i", e_rad, fiber)[:, None] * fiber
     s0 = _unit(s0, _any_normal(fiber))
-    sheet = np.cos(beta)[:, None] * s0 + np.sin(beta)[:, None] * np.cross(fiber, s0)
+    sheet = np.cos(beta)[:, None] * s0 + np.sin(beta)[:, None] * cross(fiber, s0)
     helix = np.degrees(np.arctan2(np.einsum("ij,ij->i", fiber, e_long), np.einsum("ij,ij->i", fiber, e_circ)))
     helix = np.where(helix > 90.0, helix - 180.0, np.where(helix <= -90.0, helix + 180.0, helix))
     sheet_angle = np.degrees(np.arctan2(np.sin(beta), np.cos(beta)))
     sheet_angle = np.where(sheet_angle > 90.0, sheet_angle - 180.0,
                            np.where(sheet_angle <= -90.0, sheet_angle + 180.0, sheet_angle))
-    return {"fiber": fiber, "sheet": sheet, "sheet_normal": np.cross(fiber, sheet), "helix": helix,
+    return {"fiber": fiber, "sheet": sheet, "sheet_normal": cross(fiber, sheet), "helix": helix,
             "sheet_angle": sheet_angle, "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}
 
 
@@ -312,7 +313,7 @@ def axis_frame(u, v, fallback):
     e_long = _unit(u, fallback)
     e_rad = v - np.einsum("ij,ij->i", v, e_long)[:, None] * e_long
     e_rad = _unit(e_rad, _any_normal(e_long))
-    e_circ = np.cross(e_long, e_rad)
+    e_circ = cross(e_long, e_rad)
     return np.stack([e_circ, e_long, e_rad], axis=2)
 
 
@@ -326,8 +327,8 @@ def orient(frame, helix, sheet):
     ca, sa = np.cos(helix)[:, None], np.sin(helix)[:, None]
     cb, sb = np.cos(sheet)[:, None], np.sin(sheet)[:, None]
     fiber = ca * e_circ + sa * e_long
-    sheet_dir = cb * e_rad + sb * np.cross(fiber, e_rad)
-    return np.stack([fiber, sheet_dir, np.cross(fiber, sheet_dir)], axis=2)
+    sheet_dir = cb * e_rad + sb * cross(fiber, e_rad)
+    return np.stack([fiber, sheet_dir, cross(fiber, sheet_dir)], axis=2)
 
 
 def to_quaternion(R):
@@ -408,12 +409,12 @@ def _unit(v, fallback):
 
 def _any_normal(e):
     pick = np.where((np.abs(e[:, 0]) < 0.9)[:, None], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0])
-    v = np.cross(e, pick)
+    v = cross(e, pick)
     return v / np.linalg.norm(v, axis=1)[:, None]
 
 
 def _angle_about_axis(points, centre, axis_dir, zero):
-    second = np.cross(axis_dir, zero)
+    second = cross(axis_dir, zero)
     rel = np.asarray(points, float) - centre
     deg = np.degrees(np.arctan2(rel @ second, rel @ zero))
     return np.where(deg >= 180.0, deg - 360.0, deg)

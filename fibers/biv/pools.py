@@ -23,6 +23,7 @@ from fibers.biv.mesh import RV_ENDO, RV_FREE_WALL, BiVMesh
 from fibers.biv.regions import rv_thirds
 from fibers.config import Box
 from fibers.types import ENDO, EPI
+from fibers.vectors import cross
 
 RV_POOLS = ("rv_cavity", "rv_endo")
 
@@ -61,7 +62,7 @@ def _biv_fields(arrays, mesh, arch, fields):
     sheet = _interp(arrays, mesh, arch.sheet)
     sheet = _unit(sheet - np.einsum("ij,ij->i", sheet, fiber)[:, None] * fiber)
     arrays["fiber"], arrays["sheet"] = fiber, sheet
-    arrays["sheet_normal"] = np.cross(fiber, sheet)
+    arrays["sheet_normal"] = cross(fiber, sheet)
     arrays["helix_angle"] = _interp(arrays, mesh, arch.helix_angle)
     for name in ("helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion"):
         arrays[name] = _interp(arrays, mesh, getattr(arch, name))
