@@ -101,8 +101,9 @@ def test_barycentric_interpolation_reproduces_linear_fields(shell):
 def test_solver_reports_non_convergence(shell):
     K = fem.stiffness(shell.points, shell.tets)
     nodes, values = _transmural_bc(shell)
+    # a tolerance below rounding: not reached (on this small shell the coarsest level is the whole system)
     with pytest.raises(RuntimeError, match="did not converge"):
-        fem.solve_dirichlet(K, nodes, values, tol=1e-15, maxiter=1)
+        fem.solve_dirichlet(K, nodes, values, tol=1e-30, maxiter=1)
 
 
 def test_conflicting_dirichlet_values_are_rejected(shell):
