@@ -54,13 +54,15 @@ opposite vectors would cancel, the heavier of the two is taken instead.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from fibers import fem
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI, WallMesh
+from fibers.vectors import cross
 
 log = logging.getLogger(__name__)
 
@@ -152,6 +154,19 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         raise InputError("wall mesh has nodes on both the endocardium and the epicardium; "
                          "the wall is pinched to zero thickness, check the contours")
 
+    # The thickness depth (exact distances to both surfaces) needs nothing of the Laplace
+    # fields: it runs on a second thread meanwhile. The k-d tree queries and numpy's array
+    # arithmetic release the GIL, so on two cores it costs little more than the solves alone.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        thickness_job = pool.submit(thickness_fraction, mesh)
+        result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
+        thickness = thickness_job.result()
+    return replace(result, thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1))
+
+
+def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordinates:
+    """The two Laplace solutions, the circumferential angle and the frames (nodes and cells)."""
+    points, tets = mesh.points, mesh.tets
     volumes, grads = fem.tet_gradients(points, tets)
     K = fem.stiffness(points, tets, volumes=volumes, grads=grads)
 
@@ -180,15 +195,14 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     radial_guess = points - mesh.axis.base_centre
     e_rad = _unit_with_fallback(g_t, _normalise(radial_guess, -axis_dir))
     e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
-    e_circ = np.cross(e_long, e_rad)
+    e_circ = cross(e_long, e_rad)
 
     cell_e_rad = _unit_with_fallback(g_t_cell, _normalise(e_rad[tets].mean(axis=1), -axis_dir))
     cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero,
                                 scale=float(np.median(np.linalg.norm(g_a, axis=1))))
-    cell_e_circ = np.cross(cell_e_long, cell_e_rad)
+    cell_e_circ = cross(cell_e_long, cell_e_rad)
 
     centroids = points[tets].mean(axis=1)
-    thickness = thickness_fraction(mesh)
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
@@ -197,7 +211,6 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         cell_transmural=transmural[tets].mean(axis=1),
         cell_apicobasal=position[tets].mean(axis=1),
         cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
-        thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1),
         frame_quality=frame_quality(points, mesh.axis),
         cell_frame_quality=frame_quality(centroids, mesh.axis))
 
@@ -317,7 +330,7 @@ def apex_patch(mesh: WallMesh) -> np.ndarray:
 
 def _angle_about_axis(points, centre, axis_dir, zero):
     """Angle (K,) in degrees in [-180, 180), right-handed about ``axis_dir``, 0 at ``zero``."""
-    second = np.cross(axis_dir, zero)
+    second = cross(axis_dir, zero)
     rel = np.asarray(points, float) - centre
     deg = np.degrees(np.arctan2(np.einsum("ij,j->i", rel, second),
                                 np.einsum("ij,j->i", rel, zero)))
@@ -334,7 +347,7 @@ def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
     zero_t = zero - np.einsum("ij,j->i", e_rad, zero)[:, None] * e_rad
     # Last resort, only where e_rad is parallel to both the axis and the zero direction (which
     # are orthogonal, so never both): any vector orthogonal to e_rad.
-    other = np.cross(e_rad, zero)
+    other = cross(e_rad, zero)
     fallback = _unit_with_fallback(zero_t, _normalise(other, axis_dir), scale=1.0)
     fallback = _unit_with_fallback(axis_t, fallback, scale=1.0)
     e_long = _unit_with_fallback(tangential, fallback, scale=max(scale, 1e-300))
