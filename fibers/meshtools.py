@@ -12,8 +12,10 @@ LOCAL_FACES = _LOCAL_FACES  # face j is the one opposite vertex j
 
 def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
     """Signed volumes (M,) in mm^3; positive when (b-a, c-a, d-a) is right-handed."""
+    from fibers.vectors import cross
+
     a, b, c, d = (points[tets[:, k]] for k in range(4))
-    return np.einsum("ij,ij->i", np.cross(b - a, c - a), d - a) / 6.0
+    return np.einsum("ij,ij->i", cross(b - a, c - a), d - a) / 6.0
 
 
 def orient_positive(points: np.ndarray, tets: np.ndarray) -> np.ndarray:

@@ -379,7 +379,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
 
     n = int(settings.myocardium)
     unit = _unit(rngs["myocardium"], n, 4, settings.sampler)
-    volumes = meshtools.signed_volumes(mesh.points, mesh.tets)
+    volumes = mesh.cell_volumes
     tet = _pick(np.abs(volumes), unit[:, 0])
     bary = fold_to_tet(unit[:, 1:])
     points = np.einsum("km,kmj->kj", bary, mesh.points[mesh.tets[tet]])

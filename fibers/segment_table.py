@@ -74,7 +74,7 @@ def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarr
         has no sample.
     """
     n = N_SEGMENTS + 1
-    volumes = np.abs(meshtools.signed_volumes(mesh.points, mesh.tets))
+    volumes = np.abs(mesh.cell_volumes)
     labels = np.asarray(cell_labels, np.int64)
     volume = np.bincount(labels, weights=volumes, minlength=n)[:n] / 1000.0
     volume[0] = volumes.sum() / 1000.0

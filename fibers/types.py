@@ -7,6 +7,7 @@ frame, tetrahedra ``(M, 4)`` int64, direction vectors unit length.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -131,6 +132,14 @@ class WallMesh:
     endo_apex: np.ndarray
     epi_apex: np.ndarray
     quality: dict = field(default_factory=dict)
+
+    @cached_property
+    def cell_volumes(self) -> np.ndarray:
+        """Volumes (M,) mm^3 of the tetrahedra (signed; positive for a valid mesh), computed once
+        for the stages that weight by them (pools, segments.csv, the summary)."""
+        from fibers.meshtools import signed_volumes
+
+        return signed_volumes(self.points, self.tets)
 
     def face_nodes(self, tag: int) -> np.ndarray:
         """Sorted unique node indices on the boundary faces with this tag."""
