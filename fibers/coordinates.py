@@ -91,6 +91,11 @@ class CardiacCoordinates:
         Mean of the nodal values over each element's vertices.
     cell_circumferential : ndarray (M,), degrees
         Angle of each element's centroid.
+    wall_thickness : ndarray (N,), mm
+        ``d_endo + d_epi`` at each node, the exact distances to the two surfaces (see
+        `surface_distances`): on the endocardium the distance to the epicardium and the other
+        way round, the wall thickness there. segments.csv, the report and the cohort table
+        average it per segment.
     thickness_fraction, cell_thickness_fraction : ndarray (N,), (M,)
         Fraction of the wall thickness from the endocardium (0) to the epicardium (1), see
         `thickness_fraction`; per element the mean over its vertices.
@@ -112,6 +117,7 @@ class CardiacCoordinates:
     cell_circumferential: np.ndarray | None = None
     thickness_fraction: np.ndarray | None = None
     cell_thickness_fraction: np.ndarray | None = None
+    wall_thickness: np.ndarray | None = None
     frame_quality: np.ndarray | None = None
     cell_frame_quality: np.ndarray | None = None
 
@@ -158,10 +164,12 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     # fields: it runs on a second thread meanwhile. The k-d tree queries and numpy's array
     # arithmetic release the GIL, so on two cores it costs little more than the solves alone.
     with ThreadPoolExecutor(max_workers=1) as pool:
-        thickness_job = pool.submit(thickness_fraction, mesh)
+        distances_job = pool.submit(surface_distances, mesh)
         result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
-        thickness = thickness_job.result()
-    return replace(result, thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1))
+        d_endo, d_epi = distances_job.result()
+    thickness = _fraction(d_endo, d_epi)
+    return replace(result, thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1),
+                   wall_thickness=d_endo + d_epi)
 
 
 def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordinates:
@@ -239,6 +247,22 @@ def thickness_fraction(mesh: WallMesh, points: np.ndarray | None = None) -> np.n
     -------
     ndarray (K,), in [0, 1]
     """
+    return _fraction(*surface_distances(mesh, points))
+
+
+def surface_distances(mesh: WallMesh, points: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Exact distances (K,), (K,) mm from points to the endocardial and the epicardial faces.
+
+    Parameters
+    ----------
+    mesh : WallMesh
+    points : ndarray (K, 3), mm, optional
+        Default: the mesh nodes, whose distance to their own surface is set to exactly 0.
+
+    Returns
+    -------
+    d_endo, d_epi : ndarray (K,), mm
+    """
     from fibers.surface_distance import distance_to_surface
 
     nodes = points is None
@@ -248,6 +272,10 @@ def thickness_fraction(mesh: WallMesh, points: np.ndarray | None = None) -> np.n
     if nodes:  # nodes of a surface lie on it: exact 0 and 1 there, as for the Laplace depth
         d_endo[mesh.face_nodes(ENDO)] = 0.0
         d_epi[mesh.face_nodes(EPI)] = 0.0
+    return d_endo, d_epi
+
+
+def _fraction(d_endo: np.ndarray, d_epi: np.ndarray) -> np.ndarray:
     total = d_endo + d_epi
     return np.clip(d_endo / np.where(total > 0, total, 1.0), 0.0, 1.0)
 

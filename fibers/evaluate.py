@@ -42,8 +42,9 @@ from fibers.types import BASE, ENDO, EPI, LongAxis, WallMesh
 log = logging.getLogger(__name__)
 
 NODAL_FIELDS = ("transmural", "apicobasal", "circumferential", "e_rad", "e_long", "e_circ")
-OPTIONAL_NODAL = ("thickness_fraction",)   # needed by the laws with depth = "thickness"
-SCALARS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "frame_quality",
+OPTIONAL_NODAL = ("thickness_fraction",    # needed by the laws with depth = "thickness"
+                  "wall_thickness")        # absent from builds before it was written
+SCALARS = ("transmural", "thickness_fraction", "wall_thickness", "apicobasal", "circumferential", "frame_quality",
            "helix_angle", "helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion")
 VECTORS = ("e_rad", "e_circ", "e_long", "fiber", "sheet", "sheet_normal")
 # nodal outputs of the build that the evaluator rebuilds rather than interpolates
@@ -101,7 +102,7 @@ class FieldEvaluator:
         -------
         dict of str to ndarray
             ``inside`` (K,) bool; ``transmural``, ``apicobasal``, ``circumferential`` (degrees),
-            ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle`` (degrees), ``dispersion``, ``thickness_fraction``, ``frame_quality`` (mm) (K,) float64, NaN outside;
+            ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle`` (degrees), ``dispersion``, ``thickness_fraction``, ``wall_thickness`` (mm, when the build has it), ``frame_quality`` (mm) (K,) float64, NaN outside;
             ``e_rad``, ``e_circ``, ``e_long``, ``fiber``, ``sheet``, ``sheet_normal`` (K, 3)
             unit, zero outside; ``aha_segment`` (K,) int8, 0 outside; ``tet`` (K,) int64, -1
             outside; and every further point field of the mesh (NaN outside).

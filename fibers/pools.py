@@ -146,7 +146,8 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
     Returns
     -------
     dict of str to ndarray
-        ``transmural``, ``thickness_fraction``, ``apicobasal``, ``circumferential``
+        ``transmural``, ``thickness_fraction``, ``wall_thickness`` (mm, when the coordinates
+        carry it), ``apicobasal``, ``circumferential``
         (degrees), ``e_rad``, ``e_long``, ``e_circ``, ``frame_quality`` (mm), the fields of
         `fibers.architecture.point_triad` (``fiber``, ``sheet``, ``sheet_normal``,
         ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle``,
@@ -173,6 +174,8 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
            "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}
     if coords.thickness_fraction is not None:
         out["thickness_fraction"] = np.clip(interp(coords.thickness_fraction), 0.0, 1.0)
+    if getattr(coords, "wall_thickness", None) is not None:
+        out["wall_thickness"] = interp(coords.wall_thickness)
     out["frame_quality"] = coordinates.frame_quality(points, mesh.axis)
     out.update(architecture.point_triad({"points": points, **out}, law, axis=mesh.axis,
                                         septal=septum is not None))

@@ -78,6 +78,20 @@ def test_thickness_depth_on_a_spherical_shell(sphere):
     assert c.transmural[mid].mean() == pytest.approx(0.6, abs=0.02)
 
 
+def test_wall_thickness_on_a_spherical_shell(sphere):
+    # Closed form: at every point of a spherical shell the distances to its two spheres add up:
+    # d_endo + d_epi = (r - ri) + (ro - r) = ro - ri. The faces are chords, inside their sphere
+    # by the sagitta h^2 / (8 r) (elementary geometry): up to 0.1 mm for the longest edges
+    # (about 4 mm) on the 20 mm sphere, 0.07 mm on the 30 mm one.
+    mesh, c = sphere
+    assert np.abs(c.wall_thickness - (RO - RI)).max() < 0.15
+    # on the endocardium it is the distance to the epicardium alone, and the other way round
+    endo, epi = mesh.face_nodes(ENDO), mesh.face_nodes(EPI)
+    r = np.linalg.norm(mesh.points, axis=1)
+    assert np.abs(c.wall_thickness[endo] - (RO - r[endo])).max() < 0.08
+    assert np.abs(c.wall_thickness[epi] - (r[epi] - RI)).max() < 0.12
+
+
 def test_helix_is_zero_at_mid_thickness_on_a_sphere(sphere):
     # Linear +-60 law in the thickness depth (the default): 0 degrees at mid-wall. Measured from
     # the output fiber in the sphere's own frame (wall normal radial, circumferential z x r),

@@ -60,7 +60,7 @@ def built(case):
 def test_counts_and_fields(built):
     wall_fields = {"points", "transmural", "apicobasal", "circumferential", "e_rad", "e_long",
                    "e_circ", "fiber", "sheet", "sheet_normal", "helix_angle", "sheet_angle",
-                   "helix_angle_sax", "imbrication_angle", "dispersion", "thickness_fraction",
+                   "helix_angle_sax", "imbrication_angle", "dispersion", "thickness_fraction", "wall_thickness",
                    "frame_quality", "aha_segment", "tet"}
     assert set(built) == set(pools.POOL_NAMES)
     for name in pools.POOL_NAMES:

@@ -15,8 +15,8 @@ import numpy as np
 import fibers
 from fibers.types import BASE, ENDO, EPI, FACE_TAG_NAMES, SEGMENT_NAMES
 
-POINT_FIELDS = ("transmural", "thickness_fraction", "apicobasal", "circumferential", "e_rad",
-                "e_long", "e_circ", "frame_quality", "fiber", "sheet", "sheet_normal",
+POINT_FIELDS = ("transmural", "thickness_fraction", "wall_thickness", "apicobasal", "circumferential",
+                "e_rad", "e_long", "e_circ", "frame_quality", "fiber", "sheet", "sheet_normal",
                 "helix_angle", "helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion")
 CELL_TRIAD = {"fiber": "cell_fiber", "sheet": "cell_sheet", "sheet_normal": "cell_sheet_normal"}
 WALL_TAG = 1  # physical tag of the wall volume in mesh.msh (the faces use 1, 2, 3 in dimension 2)
@@ -31,6 +31,7 @@ CONVENTIONS = {
     "e_circ": "e_long x e_rad",
     "helix_angle": "angle of the fiber (projected on the plane normal to e_rad) from e_circ toward e_long, atan2(fiber . e_long, fiber . e_circ), the Laplace frame; positive is a right-handed helix; the law is laid out in the frame parameters.fibers.helix_frame names",
     "thickness_fraction": "fraction of the wall thickness, d_endo / (d_endo + d_epi) from the distances to the two surfaces; 0 endocardium, 1 epicardium",
+    "wall_thickness": "d_endo + d_epi in mm, the exact distances from the node to the endocardial and epicardial surfaces: on each surface the wall thickness there (segments.csv, the report and cohort.csv average it per segment)",
     "fiber_depth": "the fiber laws use the depth named by parameters.fibers.depth: thickness_fraction ('thickness') or transmural ('laplace')",
     "helix_angle_sax": "angle of the fiber's projection on the wall's tangent plane (normal e_rad) from the short-axis circumferential direction (long axis x e_rad, normalised) toward the long axis; near the apex (e_rad within 30 degrees of the axis) the direction about the axis at the point",
     "imbrication_angle": "angle of the fiber out of the wall's tangent plane, asin(fiber . e_rad); positive toward the epicardium",
@@ -53,6 +54,8 @@ def point_data(result) -> dict:
     c, a = result.coords, result.arch
     data = {name: getattr(c, name) for name in ("transmural", "thickness_fraction", "apicobasal", "circumferential",
                                                 "e_rad", "e_long", "e_circ", "frame_quality")}
+    if getattr(c, "wall_thickness", None) is not None:
+        data["wall_thickness"] = c.wall_thickness
     data.update({name: getattr(a, name) for name in ("fiber", "sheet", "sheet_normal", "helix_angle", "helix_angle_sax",
                                                      "imbrication_angle", "sheet_angle", "dispersion")})
     data.update(getattr(result, "extra_point_data", {}))  # a route's own fields (both ventricles)
