@@ -72,7 +72,7 @@ import numpy as np
 from fibers import fem
 from fibers.architecture import Architecture, short_axis_frame
 from fibers.biv.mesh import RV_ENDO, BiVMesh
-from fibers.coordinates import CardiacCoordinates, _even_along_axis, apex_patch, frame_quality
+from fibers.coordinates import CardiacCoordinates, apex_patch, even_along_axis, frame_quality
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI
 
@@ -170,7 +170,7 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
                                       tol=tol), 0.0, 1.0)
     axis_dir = mesh.axis.direction
     depth_below = (mesh.axis.base_centre - points) @ axis_dir
-    position = _even_along_axis(psi, depth_below, apex)
+    position = even_along_axis(psi, depth_below, apex)
 
     def at_nodes(u):
         return fem.cell_to_nodes(tets, fem.cell_gradient(points, tets, u, grads=grads), volumes,
