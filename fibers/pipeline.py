@@ -275,7 +275,7 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
                 outputs.write_all(tmp, result)
                 if case.labelmap is not None:   # the extracted contours, to edit and rebuild
                     from fibers.io import contours as contour_io
-                    contour_io.write_contours(tmp / "contours.csv", result.contours)
+                    contour_io.write_contours(tmp / "contours.csv", getattr(result, "all_contours", result.contours))
             if extra is not None:
                 extra(tmp)
             manifest = outputs.manifest(result, case, provenance)

@@ -34,6 +34,19 @@ class BiVResult(Result):
     fields: object = None
     rv_region: np.ndarray | None = None
     law: biv_coords.BiVLaw | None = None
+    right_contours: RightContours | None = None
+
+    @property
+    def all_contours(self) -> RawContours:
+        """The left and right contours as one table (a label map build's ``contours.csv``)."""
+        rc = self.right_contours
+        if rc is None:
+            return self.contours
+        c = self.contours
+        return RawContours(structure=np.concatenate([c.structure, rc.structure]),
+                           slice_id=np.concatenate([c.slice_id, rc.slice_id]),
+                           points=np.concatenate([c.points, rc.points]), line=np.concatenate([c.line, rc.line]),
+                           source=c.source, slice_thickness=c.slice_thickness)
 
     # what the mesh files carry beyond the left-ventricular fields (fibers.io.outputs)
     @property
@@ -92,7 +105,8 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
     result = BiVResult(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                        septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
                        timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
-                       right=rs, fields=fields, rv_region=rv_region, law=law)
+                       right=rs, fields=fields, rv_region=rv_region, law=law,
+                       right_contours=right)
     result.summary = summarise(result)
     result.summary.update(_slice_facts(result.stack, contours, base, {}))
     result.summary["biventricular"] = biv_summary(result)
