@@ -130,3 +130,26 @@ def test_right_handed_helix_at_both_endocardia(built):
     circ = np.cross([0.0, 0.0, 1.0], radial)
     along = f_local[:, 2] * np.sign(np.einsum("ij,ij->i", f_local, circ))
     assert np.mean(along > 0) > 0.9
+
+
+def test_segment_rows_of_both_ventricles(built):
+    shape, result = built
+    rows = {r["segment"]: r for r in result.segment_rows()}
+    assert list(rows)[:18] == list(range(18)) and list(rows)[18:] == ["rv", "rv1", "rv2", "rv3"]
+    vols = biv_mesh.volumes_ml(result.mesh)
+    # the right free wall's rows partition its cells; the left rows cover the rest
+    assert sum(rows[k]["volume_ml"] for k in ("rv1", "rv2", "rv3")) == pytest.approx(rows["rv"]["volume_ml"], rel=1e-9)
+    assert rows["rv"]["volume_ml"] == pytest.approx(vols["rv_free_wall_ml"], rel=1e-9)
+    assert rows[0]["volume_ml"] == pytest.approx(vols["lv_free_wall_ml"] + vols["septum_ml"], rel=1e-9)
+    # against the analytic shape (quadrature, elementary calculus): the free wall's volume
+    assert rows["rv"]["volume_ml"] == pytest.approx(shape.volumes_ml()["rv_free_wall_ml"], rel=0.08)
+    # mid-third thickness near the free wall's radial thickness: the shortest distance is at
+    # most the radial one and the wall is nearly normal to the radius mid-crescent (common practice)
+    assert 0.75 * shape.wall < rows["rv2"]["thickness_mean_mm"] <= 1.05 * shape.wall
+    # septal segments measured across the septum, not across the right cavity: the left wall of
+    # these near-uniform shells is within 15 % of its lateral thickness there
+    septal = np.mean([rows[k]["thickness_mean_mm"] for k in (2, 3, 8, 9)])
+    lateral = np.mean([rows[k]["thickness_mean_mm"] for k in (5, 6, 11, 12)])
+    assert septal == pytest.approx(lateral, rel=0.15)
+    # helix at the right free wall's endocardium: the law's right-handed +rv_helix_endo
+    assert rows["rv"]["helix_endo_deg"] == pytest.approx(bc.BiVLaw().rv_helix_endo, abs=1.0)

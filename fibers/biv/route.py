@@ -9,18 +9,19 @@ from __future__ import annotations
 
 import logging
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
-from fibers import segments, stack as stack_stage, surfaces as surface_stage
+from fibers import meshtools, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.biv import coordinates as biv_coords, mesh as biv_mesh, pools as biv_pools, regions
 from fibers.biv.inputs import RightContours
 from fibers.biv.surfaces import epi_point, fit_right
 from fibers.config import Box, Landmarks
 from fibers.io.folder import rearm_signals, signals_blocked
 from fibers.pipeline import Result, _Clock, _contour_box, _slice_facts, base_choice, summarise
-from fibers.types import RawContours
+from fibers.segment_table import rv_free_wall_rows, segment_table
+from fibers.types import EPI, RawContours
 
 log = logging.getLogger("fibers")
 
@@ -62,6 +63,10 @@ class BiVResult(Result):
     @property
     def face_names(self) -> dict:
         return dict(biv_mesh.FACE_NAMES)
+
+    def segment_rows(self) -> list[dict]:
+        """Rows of ``segments.csv`` on both ventricles (see :func:`segment_rows`)."""
+        return segment_rows(self.mesh, self.arch.helix_angle, self.aha, self.septum, self.rv_region)
 
 
 def run(contours: RawContours, right: RightContours, case, *, box: Box | None = None,
@@ -113,6 +118,33 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
     # the resolved biventricular parameters (left out of "parameters" unless the case gave them)
     result.summary["biventricular"]["rv_wall_thickness_parameter_mm"] = float(case.rv_wall_thickness)
     return result
+
+
+def segment_rows(wall: biv_mesh.BiVMesh, helix_angle: np.ndarray, aha: np.ndarray, septum,
+                 rv_region: np.ndarray) -> list[dict]:
+    """``segments.csv`` of both ventricles: the left ventricle's rows 0-17, then the right free wall's.
+
+    The AHA rows are measured on the left ventricle's own surfaces: its endocardium and, as its
+    outer surface, the epicardium of the left free wall and the septum's right face (the right
+    endocardium over the septum), so a septal segment's thickness is the septum's, not the
+    distance across the right cavity. Row 0 is the left ventricle, septum included (every cell
+    outside the right free wall). Then ``rv`` (the whole right free wall) and ``rv1``-``rv3``
+    (basal, mid, apical thirds), from :func:`fibers.segment_table.rv_free_wall_rows`.
+    """
+    owner = meshtools.boundary_faces(wall.tets)[1]
+    free = wall.region[owner] == biv_mesh.RV_FREE_WALL
+    tags = np.where(free, 0, wall.face_tags)            # the right free wall's faces left out
+    tags = np.where(~free & (wall.face_tags == biv_mesh.RV_ENDO), EPI, tags)
+    lv_cells = wall.region != biv_mesh.RV_FREE_WALL
+    left = replace(wall, face_tags=tags)
+    rows = segment_table(left, helix_angle, aha, septum)
+    lv_ml = float(np.abs(meshtools.signed_volumes(wall.points, wall.tets[lv_cells])).sum()) / 1000.0
+    rows[0] = dict(rows[0], name="left ventricle (septum included)", volume_ml=lv_ml)
+    node_thirds = regions.rv_thirds(wall.points, wall, np.ones(len(wall.points), bool))
+    rows += rv_free_wall_rows(wall.points, wall.tets, helix_angle, rv_region, node_thirds,
+                              wall.faces[free & (wall.face_tags == biv_mesh.RV_ENDO)],
+                              wall.faces[free & (wall.face_tags == EPI)])
+    return rows
 
 
 def insertion_points(wall: biv_mesh.BiVMesh, *, fraction: float = 1.0 / 6.0) -> Landmarks:
