@@ -103,6 +103,8 @@ def test_route_rule():
         assert not biv_labels.right_wanted("lv", V, "seg")
     with pytest.raises(InputError, match="rv = 0"):
         biv_labels.right_wanted("biv", masks.LabelValues(rv=None), "seg")
+    with pytest.raises(InputError, match="rv_wall = 4 asks for both ventricles"):
+        biv_labels.right_wanted(None, masks.LabelValues(rv=None, rv_wall=4), "seg")
 
 
 def test_without_rv_wall_only_rv_endo():
@@ -208,3 +210,16 @@ def test_cli_demo_biv_labelmap(tmp_path):
     assert manifest["summary"]["biventricular"]["ventricles"] == "biv"
     assert (tmp_path / "d" / "input" / "labelmap.nii.gz").is_file()
     assert manifest["parameters"]["input.labels"]["rv_wall"] == 4
+
+
+def test_cli_refuses_a_missing_rv_wall_label(tmp_path, capsys):
+    _, labels, affine = _demo_map()
+    write_labelmap(tmp_path / "seg.nii.gz", labels, affine)
+    (tmp_path / "case.toml").write_text('[input]\nlabelmap = "seg.nii.gz"\n[input.labels]\nrv_wall = 7\n')
+    assert main(["build", str(tmp_path / "case.toml"), "--out", str(tmp_path / "out")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    line = [e for e in err if e.startswith("error:")]
+    assert len(line) == 1 and "seg.nii.gz" in line[0] and "rv_wall = 7 not in the image" in line[0]
+    assert "Traceback" not in "\n".join(err)
+    assert not (tmp_path / "out").exists()                  # nothing written
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["case.toml", "seg.nii.gz"]

@@ -59,10 +59,12 @@ def right_wanted(ventricles: str | None, values: masks.LabelValues, source: str)
             warnings.warn(f"{source}: [geometry] ventricles = \"lv\": the right ventricle (rv = {values.rv}, "
                           f"rv_wall = {values.rv_wall}) gives only the insertion points", stacklevel=3)
         return False
-    if ventricles == "biv" and values.rv is None:
-        raise InputError(f"{source}: [geometry] ventricles = \"biv\" but [input.labels] rv = 0; set rv to the "
+    wanted = ventricles == "biv" or values.rv_wall is not None
+    if wanted and values.rv is None:
+        why = "[geometry] ventricles = \"biv\"" if ventricles == "biv" else f"[input.labels] rv_wall = {values.rv_wall}"
+        raise InputError(f"{source}: {why} asks for both ventricles but [input.labels] rv = 0; set rv to the "
                          "right-ventricular cavity's label value, or ventricles = \"lv\"")
-    return ventricles == "biv" or values.rv_wall is not None
+    return wanted
 
 
 def right_contours(labels: np.ndarray, affine: np.ndarray, values: masks.LabelValues, left: RawContours,
