@@ -68,6 +68,7 @@ REGION_COLOURS = {
     "myocardium": "#b5523b", "endo": "#e0a526", "epi": "#5b3f8c", "base": "#2f8f5b",
     "cavity pool": "#8fbfe8", "background: cavity": "#1f4f8a", "background: above_base": "#a9a9a9",
     "background: outside": "#c9b690", "background: wall": "#ff00aa",
+    "rv_cavity pool": "#3fa7a0", "rv_endo": "#d17a9e",   # both ventricles only
 }
 
 
@@ -161,6 +162,7 @@ def load_build(folder: Path, manifest: dict) -> Build:
     pools = {name: read_pool_arrays(folder, name, keys[name]) for name in POOL_FILES}
     if (manifest.get("summary") or {}).get("biventricular"):  # both ventricles: the right face too
         pools["rv_endo"] = read_pool_arrays(folder, "rv_endo", ("points", "aha_segment"))
+        pools["rv_cavity"] = read_pool_arrays(folder, "rv_cavity", ("points",))
 
     la = manifest.get("long_axis") or {}
     centre = np.asarray(la.get("base_centre_mm"), float)
