@@ -88,7 +88,8 @@ def test_left_cavity_label_spilled_into_the_right_stays_right_cavity():
     rv = np.argwhere(labels[:, :, k] == V.rv)
     half = rv[rv[:, 0] > np.median(rv[:, 0])]
     spilled[half[:, 0], half[:, 1], k] = V.cavity
-    _, right2, _ = _right(spilled, affine)
+    _, right2, notes = _right(spilled, affine)
+    assert any(f"as right cavity, on slice(s) {k}" in n for n in notes)
     pick = lambda r: r.points[(r.structure == "rv_endo") & (r.slice_id == k)]  # noqa: E731
     # the same cavity outline: areas by the shoelace formula agree within 1 %
     assert _area(pick(right2), shape) == pytest.approx(_area(pick(right), shape), rel=0.01)

@@ -107,7 +107,7 @@ def right_contours(labels: np.ndarray, affine: np.ndarray, values: masks.LabelVa
 
     counted = [int(k) for k in np.unique(left.slice_id[left.structure == "epi"])]
     _warn_outside(lab, values, counted, source)
-    rows, dropped, no_wall = [], {}, []
+    rows, dropped, no_wall, adopted = [], {}, [], {}
     for k in counted:
         epi = left.points[(left.structure == "epi") & (left.slice_id == k)]
         uv = ((epi - origin) @ to_index.T)[:, :2]
@@ -117,6 +117,9 @@ def right_contours(labels: np.ndarray, affine: np.ndarray, values: masks.LabelVa
             dropped[k] = lost
         if cavity is None:
             continue
+        spilled = int((cavity & (lab[:, :, k] == values.cavity)).sum())
+        if spilled >= MIN_REPORTED:
+            adopted[k] = spilled
         found = {"rv_endo": masks.outline(cavity)}
         if values.rv_wall is not None:
             body, covered = _right_body(lab[:, :, k], lv, cavity, values.rv_wall)
@@ -134,6 +137,10 @@ def right_contours(labels: np.ndarray, affine: np.ndarray, values: masks.LabelVa
                          f"left ventricle counts (slices {counted[0]}-{counted[-1]}); check [input.labels] rv, or "
                          "set [geometry] ventricles = \"lv\"")
     _warn_repairs(dropped, no_wall, values, source)
+    if adopted:
+        warnings.warn(f"{source}: counted {sum(adopted.values())} voxel(s) labelled as left cavity (cavity = "
+                      f"{values.cavity}) outside the left epicardium as right cavity, on slice(s) "
+                      f"{', '.join(map(str, sorted(adopted)))}", stacklevel=2)
     structure = np.concatenate([np.full(len(p), name) for name, _, p in rows])
     slice_id = np.concatenate([np.full(len(p), k, np.int64) for _, k, p in rows])
     return RawContours(structure=structure, slice_id=slice_id, points=np.concatenate([p for *_, p in rows]),

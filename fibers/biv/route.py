@@ -113,6 +113,7 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
                        right=rs, fields=fields, rv_region=rv_region, law=law,
                        right_contours=right)
     result.summary = summarise(result)
+    result.summary["counts"]["faces"]["rv_endo"] = int(np.count_nonzero(wall.face_tags == biv_mesh.RV_ENDO))
     result.summary.update(_slice_facts(result.stack, contours, base, {}))
     result.summary["biventricular"] = biv_summary(result)
     # the resolved biventricular parameters (left out of "parameters" unless the case gave them)
