@@ -103,7 +103,8 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
             coords, arch, fields = biv_coords.compute(wall, law, zero_direction=septum.bisector)
         box = box or _contour_box(contours, case.pools.margin)
         with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
-            pool_set = biv_pools.build_pools(wall, coords, arch, fields, case.law, septum, case.pools, box=box)
+            pool_set = biv_pools.build_pools(wall, coords, arch, fields, case.law, septum, case.pools, box=box,
+                                             biv_law=law)
         caught = [str(w.message) for w in record]
     for message in caught:
         log.warning("%s", message)

@@ -42,10 +42,9 @@ CAPTIONS = {
                        "law uses: transmural in the free walls, septal_depth across the septum (0 left endocardium, "
                        "1 right endocardium). Red: the law from the manifest (summary.biventricular.fiber_law_deg). "
                        "Lower row: mean and 5-95% band of measured minus law per 0.1 of depth. Points within 15% "
-                       "of the septal arc from an insertion are left out (the frames blend there). Pool points carry "
-                       "the linear interpolation of the nodal fibers, so across a wall only one or two elements thick "
-                       "(the right free wall at coarse sizes) the angle runs nearly straight between its nodal values "
-                       "instead of along the law's curve; it approaches the curve as the elements shrink.",
+                       "of the septal arc from an insertion are left out (the frames blend there between the "
+                       "ventricles). The pool points carry the rule evaluated at their own place (fields and "
+                       "gradients interpolated from the nodes), so the angle follows the law inside the elements too.",
     "coordinates.png": "Left: the wall clipped by a plane through the long axis. Right: the same plane as a 2-D cut with "
                        "iso-lines every 0.1. On both ventricles transmural is 1 - phi_lv - phi_rv (Bayer et al. 2012): "
                        "0 on either endocardium and 1 on the epicardium, so it stays near 0 through the septum, whose "
@@ -200,7 +199,7 @@ def fig_helix(build: Build, path: Path) -> dict:
     away = _away_from_insertions(b, pool["points"])
     edges = np.linspace(0.0, 1.0, 11)
     for j, (k, name, depth_key) in enumerate(REGIONS):
-        sel = (pool["region"] == k) & (away | (k == 1))
+        sel = (pool["region"] == k) & away
         d = np.clip(pool[depth_key][sel], 0.0, 1.0)
         h = helix[sel]
         want = helix_law(law, k, d)
@@ -293,5 +292,5 @@ def helix_section(facts: dict, html_table) -> str:
                         "95th percentile (deg)", "max (deg)"], rows) +
             '<p class="muted">Helix measured back from the vectors of pools/myocardium.npz, atan2(fiber.e_long, '
             "fiber.e_circ), folded into [-90, 90); law of summary.biventricular.fiber_law_deg at the point's depth "
-            "(transmural in the free walls, septal_depth across the septum); septum and right free wall without "
+            "(transmural in the free walls, septal_depth across the septum); every region without "
             "the points near the insertions, where the frames blend between the ventricles.</p>")
