@@ -35,8 +35,10 @@ CAPTIONS = {
     "biv_fibers.png": "Fiber glyphs on surface pool points, coloured by helix angle (cyclic map). Left: the left free "
                       "wall's epicardium seen from the lateral side. Middle: the septum seen from the right cavity "
                       "(the right free wall removed), glyphs on its right face, where the helix reads -rv_helix_endo "
-                      "in the septal frame (e_rad from the left to the right cavity). Right: the right free wall's "
-                      "epicardium seen from the right.",
+                      "in the septal frame (e_rad from the left to the right cavity); along the insertions the glyphs "
+                      "of the free wall's side read +rv_helix_endo in the free wall's frame, whose e_rad points the "
+                      "other way: the same line, so the colour changes but the fiber does not turn. Right: the right "
+                      "free wall's epicardium seen from the right.",
     "helix_depth.png": "Wall pool points per region: helix angle measured back from the output vectors "
                        "(atan2(fiber.e_long, fiber.e_circ), folded into [-90, 90)) against the depth the biventricular "
                        "law uses: transmural in the free walls, septal_depth across the septum (0 left endocardium, "
