@@ -296,8 +296,6 @@ def _demo(args) -> int:
         tmp = Path(tmp)
         include = {}
         if args.biv:
-            if args.labelmap:
-                raise InputError("--biv with --labelmap: the biventricular demo is given as contours only; drop --labelmap")
             return _demo_biv(args, tmp)
         if args.labelmap:
             from fibers.demo import voxels
@@ -421,23 +419,34 @@ def _demo_cohort(args) -> int:
 
 
 def _demo_biv(args, tmp: Path) -> int:
-    """The synthetic pair of ventricles as contours, built on the biventricular route."""
+    """The synthetic pair of ventricles as contours (or a label map), built on the biventricular route."""
     from fibers import pipeline
     from fibers.demo import biventricle
     from fibers.io import case as case_io
     from fibers.io.contours import write_contours
 
     biv = biventricle.demo_subject()
-    contours, _ = biv.sample_stack(spacing=8.0, point_spacing=1.5, noise=0.4, shift=2.0, seed=11)
-    write_contours(tmp / "contours.csv", contours)
-    # no [landmarks]: the insertion points are found from the right-ventricular contours
+    # no [landmarks]: the insertion points are found from the right ventricle's geometry
     text = case_io.case_text(landmarks=None).replace("align_slices = true", 'align_slices = true\nventricles = "biv"')
+    if args.labelmap:
+        from fibers.io.labelmap import write_labelmap
+
+        labels, affine = biv.voxelise()
+        write_labelmap(tmp / "labelmap.nii.gz", labels, affine)
+        v = biventricle.BIV_LABELS
+        text = text.replace('contours = "contours.csv"', 'labelmap = "labelmap.nii.gz"\n\n[input.labels]\n'
+                            f"cavity = {v.cavity}\nwall = {v.wall}\nrv = {v.rv}\nrv_wall = {v.rv_wall}")
+        name = "labelmap.nii.gz"
+    else:
+        contours, _ = biv.sample_stack(spacing=8.0, point_spacing=1.5, noise=0.4, shift=2.0, seed=11)
+        write_contours(tmp / "contours.csv", contours)
+        name = "contours.csv"
     (tmp / "case.toml").write_text(text)
     truth = biv.volumes_ml()
     log.info("demo: synthetic ventricles, LV cavity %.0f mL, RV cavity %.0f mL, wall %.0f mL (truth)",
              truth["lv_cavity_ml"], truth["rv_cavity_ml"], truth["wall_ml"])
     case = _override(case_io.read_case(tmp / "case.toml"), args)
-    include = {"input/contours.csv": tmp / "contours.csv", "input/case.toml": tmp / "case.toml"}
+    include = {f"input/{name}": tmp / name, "input/case.toml": tmp / "case.toml"}
     pipeline.build(case, args.out, report=not args.no_report, include=include)
     return 0
 

@@ -191,7 +191,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
     transmural = np.clip(transmural, 0.0, 1.0)
     apicobasal = np.clip(apicobasal, 0.0, 1.0)
     depth = (mesh.axis.base_centre - points) @ axis_dir
-    position = _even_along_axis(apicobasal, depth, apex)
+    position = even_along_axis(apicobasal, depth, apex)
 
     circumferential = _angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
 
@@ -303,8 +303,24 @@ def frame_quality(points: np.ndarray, axis) -> np.ndarray:
     return _row_norm(off)
 
 
-def _even_along_axis(u: np.ndarray, depth: np.ndarray, patch: np.ndarray, bins: int = 64) -> np.ndarray:
+def even_along_axis(u: np.ndarray, depth: np.ndarray, patch: np.ndarray, bins: int = 64) -> np.ndarray:
     """Monotone remap of apicobasal Laplace values u (N,) so that levels are evenly spaced.
+
+    Parameters
+    ----------
+    u : ndarray (N,)
+        Apicobasal Laplace solution, 0 at the apical patch, 1 at the base.
+    depth : ndarray (N,), mm
+        Depth of each node below the base plane along the long axis.
+    patch : ndarray (P,) int or (N,) bool
+        The apical patch's nodes (its mean depth is the full length).
+    bins : int
+        Groups of equal node count the map is fitted on.
+
+    Returns
+    -------
+    ndarray (N,)
+        The remapped coordinate, non-decreasing in ``u``.
 
     Nodes are grouped into ``bins`` groups of equal size by u; a group's target value is
     1 - (its mean depth below the base) / (the mean depth of the apical patch). The map runs

@@ -79,19 +79,25 @@ class LabelValues:
     wall : int
         Left-ventricular myocardium. Default 2.
     rv : int or None
-        Right ventricle (cavity, wall or both), used only for the insertion points. Default 3;
-        None when the map has no right ventricle (give the landmarks in the case file instead).
+        Right-ventricular cavity (or the whole right ventricle when there is no ``rv_wall``).
+        On the left-ventricular route it gives only the insertion points. Default 3; None when
+        the map has no right ventricle (give the landmarks in the case file instead).
+    rv_wall : int or None
+        Right-ventricular free wall, read for both ventricles only (``fibers.biv.labels``).
+        Default None: the map has no such label.
     """
 
     cavity: int = 1
     wall: int = 2
     rv: int | None = 3
+    rv_wall: int | None = None
 
     def __post_init__(self):
-        used = [v for v in (self.cavity, self.wall, self.rv) if v is not None]
+        used = [v for v in (self.cavity, self.wall, self.rv, self.rv_wall) if v is not None]
         if len(set(used)) != len(used):
+            extra = "" if self.rv_wall is None else f", rv_wall = {self.rv_wall}"
             raise InputError(f"[input.labels] cavity = {self.cavity}, wall = {self.wall}, "
-                             f"rv = {self.rv} must be different values; fix the case file")
+                             f"rv = {self.rv}{extra} must be different values; fix the case file")
         if 0 in used:
             raise InputError("[input.labels] 0 is the background; give the structures "
                              "non-zero label values")
@@ -503,7 +509,7 @@ def _outline_slices(kept: list[int], masks: dict, rows: list, source: str) -> li
     out, below = [], None            # below: the last outlined slice nearer the apex
     for k in kept[::-1]:
         m = masks[k]
-        epi_uv = _outline(m["epi"])
+        epi_uv = outline(m["epi"])
         if epi_uv is None:
             warnings.warn(f"{source}: slice {k}: wall too small to outline "
                           f"({int(m['epi'].sum())} voxels); slice dropped", stacklevel=4)
@@ -511,7 +517,7 @@ def _outline_slices(kept: list[int], masks: dict, rows: list, source: str) -> li
                 if r["id"] == k:
                     r.update(counted=False, reason="wall too small to outline")
             continue
-        endo_uv = _outline(m["cav"]) if m["cav"] is not None else None
+        endo_uv = outline(m["cav"]) if m["cav"] is not None else None
         if m["cav"] is not None and m["coverage"] < 1.0 and endo_uv is not None:
             centre = np.argwhere(m["cav"]).mean(axis=0)
             gap = _angular_gap(np.argwhere(m["rim_open"]) - centre)
@@ -734,7 +740,7 @@ def _check_long_axis(lv: np.ndarray, cols, origin, normal, axis: int, source: st
 
 
 # -- per-slice masks and outlines -----------------------------------------------------------------
-def _outline(mask: np.ndarray) -> np.ndarray | None:
+def outline(mask: np.ndarray) -> np.ndarray | None:
     """Sub-voxel outline (n, 2) of a binary mask in (u, v) voxel indices; None if too small.
 
     The mask is padded so every line closes, smoothed lightly and cut at level 0.5 by marching

@@ -42,8 +42,8 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
         Positively oriented tetrahedra, boundary faces tagged and oriented out of the wall.
     """
     axis = surfaces.axis
-    endo_rings = _surface_rings(surfaces, "endo", size)
-    epi_rings = _surface_rings(surfaces, "epi", size)
+    endo_rings = surface_rings(surfaces, "endo", size)
+    epi_rings = surface_rings(surfaces, "epi", size)
     base_rings = _base_rings(surfaces, endo_rings[-1], epi_rings[-1], size)
 
     # global node numbering: each ring's local points, concatenated
@@ -61,9 +61,9 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
 
     # the base rings begin and end with the endo and epi rims (their nodes are shared)
     tri = {
-        ENDO: _stitch_all(endo_idx, [r[1] for r in endo_rings]),
-        EPI: _stitch_all(epi_idx, [r[1] for r in epi_rings]),
-        BASE: _stitch_all(base_idx, [r[1] for r in base_rings]),
+        ENDO: stitch_rings(endo_idx, [r[1] for r in endo_rings]),
+        EPI: stitch_rings(epi_idx, [r[1] for r in epi_rings]),
+        BASE: stitch_rings(base_idx, [r[1] for r in base_rings]),
     }
     # hand gmsh consistently oriented surfaces (out of the wall: endo into the cavity, epi
     # outward, base toward +z); the final faces come from the tetrahedra themselves
@@ -85,14 +85,33 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)
     faces, _ = meshtools.boundary_faces(tets)
-    face_tags = _match_tags(faces, tri, len(points_world))
+    face_tags = match_face_tags(faces, tri, len(points_world))
     quality = tet_quality(points_world, tets)
     return WallMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                     endo_apex=surfaces.apex("endo"), epi_apex=surfaces.apex("epi"), quality=quality)
 
 
-def _surface_rings(surfaces: Surfaces, name: str, size: float) -> list[tuple[np.ndarray, np.ndarray]]:
-    """Rings (points (n, 3) local, angles (n,)) from the apical pole (one point) to the base rim."""
+def surface_rings(surfaces: Surfaces, name: str, size: float) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Node rings of one fitted surface, from the apical pole (one point) to the base rim.
+
+    Rings are levels of the surface's prolate angle, spaced about ``ROW * size`` apart along
+    the meridian; each holds about one node per ``size`` mm of circumference, shifted half a
+    step on every other ring so the stitched triangles are near equilateral.
+
+    Parameters
+    ----------
+    surfaces : Surfaces
+    name : str
+        ``"endo"`` or ``"epi"``.
+    size : float, mm
+        Target edge length.
+
+    Returns
+    -------
+    list of (ndarray (n, 3), ndarray (n,))
+        Per ring, the local points (mm) and their angles about the axis (radians, rising from
+        about -pi); the last ring lies in the base plane exactly.
+    """
     t_fine = np.linspace(0.0, 1.0, 241)
     th_probe = np.linspace(-np.pi, np.pi, 33)[:-1]
     mu_b = surfaces.base_mu(name, th_probe)
@@ -145,7 +164,16 @@ def _rim_radius(surfaces, name, theta):
     return np.hypot(p[:, 0], p[:, 1])
 
 
-def _stitch_all(index_rings, angle_rings) -> np.ndarray:
+def stitch_rings(index_rings, angle_rings) -> np.ndarray:
+    """Triangles (T, 3) joining each closed ring of node indices to the next one.
+
+    Parameters
+    ----------
+    index_rings : list of ndarray (n_j,) int
+        Node indices of each ring, in the order of ``angle_rings``.
+    angle_rings : list of ndarray (n_j,), radians
+        Angles about the axis of each ring's nodes, rising from about -pi.
+    """
     return np.concatenate([_stitch(index_rings[j], angle_rings[j], index_rings[j + 1], angle_rings[j + 1])
                            for j in range(len(index_rings) - 1)])
 
@@ -245,8 +273,23 @@ def fill_volume(local, tri: dict, rims: dict, bounds: dict, size: float, threads
     return points, tets, tri
 
 
-def _match_tags(faces, tri, n_points):
-    """Tag of each boundary face of the tetrahedra, looked up among our tagged triangles."""
+def match_face_tags(faces, tri, n_points):
+    """Tag (F,) of each boundary face of the tetrahedra, looked up among our tagged triangles.
+
+    Parameters
+    ----------
+    faces : ndarray (F, 3) int
+        Boundary triangles of the volume mesh.
+    tri : dict int -> ndarray (T, 3) int
+        The tagged triangles handed to gmsh (tag -> triangles, any vertex order).
+    n_points : int
+        Number of mesh points (for the triangle keys).
+
+    Raises
+    ------
+    RuntimeError
+        A boundary face is not one of ours (gmsh changed the boundary).
+    """
     def key(f):
         s = np.sort(f, axis=1).astype(np.int64)
         return (s[:, 0] * n_points + s[:, 1]) * n_points + s[:, 2]

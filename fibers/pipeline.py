@@ -275,7 +275,7 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
                 outputs.write_all(tmp, result)
                 if case.labelmap is not None:   # the extracted contours, to edit and rebuild
                     from fibers.io import contours as contour_io
-                    contour_io.write_contours(tmp / "contours.csv", result.contours)
+                    contour_io.write_contours(tmp / "contours.csv", getattr(result, "all_contours", result.contours))
             if extra is not None:
                 extra(tmp)
             manifest = outputs.manifest(result, case, provenance)
@@ -319,8 +319,9 @@ def _read_inputs(case):
     from fibers.io import labelmap as labelmap_io
 
     labels_cfg = dict(case.labels)
-    if labels_cfg.get("rv") == 0:  # rv = 0 in the case file: the map has no RV label
-        labels_cfg["rv"] = None
+    for key in ("rv", "rv_wall"):  # 0 in the case file: the map has no such label
+        if labels_cfg.get(key) == 0:
+            labels_cfg[key] = None
     values = masks.LabelValues(**labels_cfg)
     image = labelmap_io.load_labelmap(case.labelmap, frame=case.frame, cavity=values.cavity)
     if len(image.frame_cavity_ml) > 1:
@@ -333,6 +334,13 @@ def _read_inputs(case):
         warnings.warn(message)
     spacing = float(np.linalg.norm(image.affine[:3, masks.slice_axis(image.affine)]))
     contours = replace(found.contours, slice_thickness=case.slice_thickness or spacing)
+    from fibers.biv import labels as biv_labels
+
+    if biv_labels.right_wanted(getattr(case, "ventricles", None), values, case.labelmap.name):
+        right = biv_labels.right_contours(image.labels, image.affine, values, contours, source=case.labelmap.name)
+        contours = biv_labels.with_right(contours, right)
+        # both ventricles: the insertion points come from the geometry unless the case gives them
+        landmarks = case.landmarks
     box = masks.field_of_view(image.full_shape, image.full_affine)
     facts = {"slices": list(found.slices), "frame": image.frame,
              "frame_reason": image.frame_reason,

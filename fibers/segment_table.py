@@ -93,3 +93,62 @@ def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarr
     return [{"segment": s, "name": names[s], "volume_ml": float(volume[s]),
              "thickness_mean_mm": float(t_mean[s]), "thickness_min_mm": float(t_min[s]),
              "helix_endo_deg": float(h_endo[s]), "helix_epi_deg": float(h_epi[s])} for s in range(n)]
+
+
+# -- both ventricles: the right free wall's thirds ------------------------------------------------
+#: Row ids and names of the right free wall in ``segments.csv`` (both ventricles only).
+RV_SEGMENT_NAMES = {"rv": "rv free wall", "rv1": "rv free wall basal", "rv2": "rv free wall mid",
+                    "rv3": "rv free wall apical"}
+
+
+def face_node_areas(points: np.ndarray, faces: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes (K,) of triangles (F, 3) and their share (K,) mm^2 of the area (a third of each)."""
+    _, areas = meshtools.triangle_normals(points, faces)
+    share = np.bincount(faces.ravel(), weights=np.repeat(areas / 3.0, 3), minlength=len(points))
+    nodes = np.unique(faces)
+    return nodes, share[nodes]
+
+
+def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndarray, cell_thirds: np.ndarray,
+                      node_thirds: np.ndarray, endo_faces: np.ndarray, epi_faces: np.ndarray) -> list[dict]:
+    """Rows ``rv``, ``rv1``-``rv3`` of ``segments.csv``: the right free wall and its thirds.
+
+    The same columns as the AHA rows (`COLUMNS`), measured the same way on the right free
+    wall's own surfaces: thickness from each node of its endocardium (the free-wall sheet of the
+    right endocardium) to the nearest node of its epicardium and back, area-weighted; helix
+    angles area-weighted over the nodes of each surface.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    tets : ndarray (M, 4) int
+    helix_angle : ndarray (N,), degrees
+    cell_thirds : ndarray (M,) int
+        1 basal, 2 mid, 3 apical third of the right free wall, 0 elsewhere.
+    node_thirds : ndarray (N,) int
+        The third of each node by its depth below the base.
+    endo_faces, epi_faces : ndarray (F, 3) int
+        The right free wall's endocardial and epicardial triangles.
+
+    Returns
+    -------
+    list of dict
+        ``rv`` (the whole free wall) then ``rv1``-``rv3``.
+    """
+    volumes = np.abs(meshtools.signed_volumes(points, tets))
+    thirds = np.asarray(cell_thirds, np.int64)
+    volume = np.bincount(thirds, weights=volumes, minlength=4)[:4] / 1000.0
+    volume[0] = volumes[thirds > 0].sum() / 1000.0
+    endo, endo_w = face_node_areas(points, endo_faces)
+    epi, epi_w = face_node_areas(points, epi_faces)
+    thick = np.concatenate([cKDTree(points[epi]).query(points[endo])[0],
+                            cKDTree(points[endo]).query(points[epi])[0]])
+    labels = np.asarray(node_thirds, np.int64)[np.concatenate([endo, epi])]
+    weights = np.concatenate([endo_w, epi_w])
+    t_mean, t_min = _per_segment(labels, thick, weights)
+    h_endo, _ = _per_segment(labels[:len(endo)], helix_angle[endo], endo_w)
+    h_epi, _ = _per_segment(labels[len(endo):], helix_angle[epi], epi_w)
+    return [{"segment": key, "name": name, "volume_ml": float(volume[k]),
+             "thickness_mean_mm": float(t_mean[k]), "thickness_min_mm": float(t_min[k]),
+             "helix_endo_deg": float(h_endo[k]), "helix_epi_deg": float(h_epi[k])}
+            for k, (key, name) in enumerate(RV_SEGMENT_NAMES.items())]

@@ -144,3 +144,35 @@ def test_septal_helix_runs_smoothly_from_left_to_right(built):
     want = law.lv_helix_endo * (1 - d) - law.rv_helix_endo * d
     assert np.abs(_cell_helix(coords, arch, cells) - want).max() < 1.0
     assert d.min() < 0.1 and d.max() > 0.9
+
+
+def test_point_rule_agrees_with_the_nodes(built):
+    wall, (coords, arch, fields), _ = built
+    rule = bc.PointRule(wall, fields, bc.BiVLaw())
+    rng = np.random.default_rng(0)
+    tet = rng.integers(0, len(wall.tets), 400)
+    corner = rng.integers(0, 4, 400)
+    w = np.eye(4)[corner]
+    nodes = wall.tets[tet, corner]
+    got = rule.at(wall.points[nodes], tet, w)
+    # at a vertex the interpolated fields and gradients are the nodal ones: the same rule, the
+    # same triads (invariant check, common practice)
+    for name, ref in (("fiber", arch.fiber), ("sheet", arch.sheet), ("e_rad", coords.e_rad)):
+        assert np.abs(np.abs(np.einsum("ij,ij->i", got[name], ref[nodes])) - 1.0).max() < 1e-9
+    assert np.allclose(got["helix"], arch.helix_angle[nodes], atol=1e-6)
+
+
+def test_point_rule_follows_the_law_inside_elements(built):
+    wall, (coords, arch, fields), _ = built
+    law = bc.BiVLaw()
+    cells = _away_from_insertions(wall, biv_mesh.RV_FREE_WALL)
+    rng = np.random.default_rng(1)
+    w = rng.dirichlet(np.ones(4), len(cells))
+    pts = np.einsum("km,kmj->kj", w, wall.points[wall.tets[cells]])
+    got = bc.PointRule(wall, fields, law).at(pts, cells, w)
+    # inside an element of a wall one or two elements thick the law still holds at the point's
+    # own depth (Shoemake 1985, as above), where interpolating the nodal fibers would not
+    want = law.rv_helix_endo + (law.rv_helix_epi - law.rv_helix_endo) * got["transmural"] ** 2
+    assert np.abs(got["helix"] - want).max() < 3.0
+    T = np.stack([got["fiber"], got["sheet"], got["sheet_normal"]], axis=2)
+    assert np.abs(np.einsum("kji,kjl->kil", T, T) - np.eye(3)).max() < 1e-9

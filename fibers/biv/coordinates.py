@@ -72,7 +72,7 @@ import numpy as np
 from fibers import fem
 from fibers.architecture import Architecture, short_axis_frame
 from fibers.biv.mesh import RV_ENDO, BiVMesh
-from fibers.coordinates import CardiacCoordinates, _even_along_axis, apex_patch, frame_quality
+from fibers.coordinates import CardiacCoordinates, apex_patch, even_along_axis, frame_quality
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI
 from fibers.vectors import cross
@@ -126,6 +126,7 @@ class BiVFields:
     phi_rv: np.ndarray
     septal_depth: np.ndarray
     cell_septal_depth: np.ndarray
+    psi: np.ndarray | None = None   # the raw apicobasal Laplace solution (its gradient is e_long's)
 
 
 def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: float = 1e-10
@@ -171,7 +172,7 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
                                       tol=tol), 0.0, 1.0)
     axis_dir = mesh.axis.direction
     depth_below = (mesh.axis.base_centre - points) @ axis_dir
-    position = _even_along_axis(psi, depth_below, apex)
+    position = even_along_axis(psi, depth_below, apex)
 
     def at_nodes(u):
         return fem.cell_to_nodes(tets, fem.cell_gradient(points, tets, u, grads=grads), volumes,
@@ -210,7 +211,55 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
                         cell_fiber=cellwise["fiber"], cell_sheet=cellwise["sheet"],
                         cell_sheet_normal=cellwise["sheet_normal"])
     return coords, arch, BiVFields(phi_lv=phi_lv, phi_rv=phi_rv, septal_depth=septal,
-                                   cell_septal_depth=cell_septal)
+                                   cell_septal_depth=cell_septal, psi=psi)
+
+
+class PointRule:
+    """The rule of :func:`compute` at any points of the wall (pool points, sample points).
+
+    At a point inside tetrahedron ``t`` with barycentric weights ``w`` the Laplace fields are
+    interpolated with ``w`` and their gradients are the nodal (volume-weighted recovered)
+    gradients interpolated likewise, so the frames and triads are built by the same steps as at
+    the nodes (`_frames_and_triads`) and agree with them at the nodes, instead of interpolating
+    the nodal fibers (which across a wall one element thick would turn the helix linearly between
+    the two surfaces' values rather than along the law).
+
+    Parameters
+    ----------
+    mesh : BiVMesh
+    fields : BiVFields
+        From :func:`compute` (``psi`` needed).
+    law : BiVLaw
+    """
+
+    def __init__(self, mesh: BiVMesh, fields: BiVFields, law: BiVLaw):
+        points, tets = mesh.points, mesh.tets
+        volumes, grads = fem.tet_gradients(points, tets)
+        recover = lambda u: fem.cell_to_nodes(tets, fem.cell_gradient(points, tets, u, grads=grads),  # noqa: E731
+                                              volumes, n_points=len(points))
+        phi_epi = np.clip(1.0 - fields.phi_lv - fields.phi_rv, 0.0, 1.0)
+        self.values = (fields.phi_lv, fields.phi_rv, phi_epi, fields.psi)
+        self.d_nodal = fields.septal_depth
+        self.gradients = {id(u): recover(u) for u in (*self.values, self.d_nodal)}
+        self.mesh, self.law = mesh, law
+
+    def at(self, points: np.ndarray, tet: np.ndarray, weights: np.ndarray) -> dict:
+        """Fields at points (K, 3) in tetrahedra ``tet`` (K,) with barycentric ``weights`` (K, 4).
+
+        Returns ``fiber``, ``sheet``, ``sheet_normal``, ``e_rad``, ``e_long``, ``e_circ`` (K, 3),
+        ``helix``, ``sheet_angle``, ``helix_sax``, ``imbrication`` (K,) degrees, ``septal_depth``
+        and ``transmural`` (K,).
+        """
+        nodes = self.mesh.tets[tet]
+        at = lambda u: np.einsum("km,km...->k...", weights, np.asarray(u)[nodes])  # noqa: E731
+        lv, rv, epi, psi = (at(u) for u in self.values)
+        gradient = lambda u: at(self.gradients[id(u)])  # noqa: E731
+        d = np.clip(_septal_depth(lv, rv, gradient(self.values[0]), gradient(self.values[1])), 0.0, 1.0)
+        out = _frames_and_triads(gradient, lv, rv, epi, psi, d, self.law, self.mesh.axis.direction,
+                                 values=self.values, d_nodal=self.d_nodal)
+        out["helix_sax"], out["imbrication"] = _imaging_angles(out["fiber"], out["e_rad"], points, self.mesh.axis)
+        out["septal_depth"], out["transmural"] = d, epi
+        return out
 
 
 def _imaging_angles(fiber, e_rad, points, axis):

@@ -28,7 +28,7 @@ from scipy.spatial import cKDTree
 
 from fibers import meshtools
 from fibers.biv.surfaces import RightSurfaces
-from fibers.mesh import ROW, _match_tags, _stitch_all, _surface_rings, fill_volume, tet_quality
+from fibers.mesh import ROW, fill_volume, match_face_tags, stitch_rings, surface_rings, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
 
@@ -74,15 +74,15 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
     BiVMesh
     """
     nodes = _Nodes()
-    endo_rings = _surface_rings(lv, "endo", size)
+    endo_rings = surface_rings(lv, "endo", size)
     endo_idx = [nodes.add(p) for p, _ in endo_rings]
     outer_rings = _outer_rings(lv, right, size)
     outer_idx = [nodes.add(p) for p, _ in outer_rings]
     septal_idx, free_idx, rows_u = _right_sheets(right, size, nodes)
 
     tri = {
-        ENDO: _stitch_all(endo_idx, [a for _, a in endo_rings]),
-        EPI: _stitch_all(outer_idx, [a for _, a in outer_rings]),
+        ENDO: stitch_rings(endo_idx, [a for _, a in endo_rings]),
+        EPI: stitch_rings(outer_idx, [a for _, a in outer_rings]),
     }
     sheets = _drop_shared(_stitch_rows(septal_idx, rows_u), _stitch_rows(free_idx, rows_u))
     rims = {"endo": endo_idx[-1], "epi": outer_idx[-1],
@@ -97,7 +97,7 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)
     faces, _ = meshtools.boundary_faces(tets)
-    face_tags = _match_tags(faces, tri, len(points_world))
+    face_tags = match_face_tags(faces, tri, len(points_world))
     region = label_regions(points, tets, right)
     return BiVMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                    endo_apex=lv.apex("endo"), epi_apex=lv.apex("epi"),

@@ -3,8 +3,10 @@
 The six pools of :mod:`fibers.pools` are drawn on the biventricular mesh as for the left
 ventricle; then
 
-- their fiber, sheet and sheet-normal directions and angles are interpolated from the nodal
-  biventricular triads (the left-ventricular angle law does not hold here), re-orthonormalised;
+- their fiber, sheet and sheet-normal directions, frames and angles come from the biventricular
+  rule evaluated at each point (:class:`fibers.biv.coordinates.PointRule`; the left-ventricular
+  angle law does not hold here); without the law, from the nodal triads interpolated and
+  re-orthonormalised;
 - the background's wall test counts the right endocardium too, so the right cavity is outside
   the wall;
 - two pools are added: ``rv_cavity`` (uniform in the right cavity, closed by the base plane) and
@@ -28,21 +30,30 @@ from fibers.vectors import cross
 RV_POOLS = ("rv_cavity", "rv_endo")
 
 
-def build_pools(mesh: BiVMesh, coords, arch, fields, law, septum, settings, *, box: Box | None = None) -> dict:
+def build_pools(mesh: BiVMesh, coords, arch, fields, law, septum, settings, *, box: Box | None = None,
+                biv_law=None) -> dict:
     """All pools on a biventricular mesh (see the module docstring).
 
     ``rv_cavity`` takes the count of ``settings.cavity`` and ``rv_endo`` that of ``settings.endo``.
+    With ``biv_law`` (and ``fields.psi``) the directions and angles at the points come from the
+    rule itself (:class:`fibers.biv.coordinates.PointRule`); otherwise the nodal triads are
+    interpolated.
     """
     wall_test = pool_stage.EnclosedTest(mesh, tags=(ENDO, EPI, RV_ENDO))
     in_wall = lambda p: (np.where(wall_test(p), 0, -1),)  # noqa: E731  the locator's contract
     pools = pool_stage.build_pools(mesh, coords, law, septum, settings, box=box, locator=in_wall)
+    rule = None
+    if biv_law is not None and getattr(fields, "psi", None) is not None:
+        from fibers.biv.coordinates import PointRule
+
+        rule = PointRule(mesh, fields, biv_law)
     for name, pool in pools.items():
         if "tet" in pool.arrays:
-            _biv_fields(pool.arrays, mesh, arch, fields)
+            _biv_fields(pool.arrays, mesh, arch, fields, rule)
     seed = np.random.default_rng(settings.seed).spawn(len(pool_stage.POOL_NAMES) + 2)[-2:]
     pools["rv_cavity"] = pool_stage.Pool("rv_cavity", {"points": _rv_cavity_points(mesh, settings, seed[0])})
     pools["rv_endo"] = pool_stage.Pool("rv_endo", _rv_endo_arrays(mesh, coords, arch, fields, law, septum,
-                                                                  settings, seed[1]))
+                                                                  settings, seed[1], rule))
     return pools
 
 
@@ -56,8 +67,21 @@ def _interp(arrays, mesh, nodal):
     return np.einsum("km,km...->k...", w, np.asarray(nodal)[tets])
 
 
-def _biv_fields(arrays, mesh, arch, fields):
-    """Replace the direction fields of a pool by the interpolated biventricular ones."""
+def _biv_fields(arrays, mesh, arch, fields, rule=None):
+    """Replace the direction fields of a pool by the biventricular ones: from the rule at the
+    points when given, else interpolated from the nodes."""
+    if rule is not None and len(arrays["points"]):
+        from fibers import fem
+
+        w = fem.barycentric(mesh.points, mesh.tets, arrays["tet"], arrays["points"])
+        got = rule.at(arrays["points"], arrays["tet"], w)
+        for key in ("fiber", "sheet", "sheet_normal", "e_rad", "e_long", "e_circ", "septal_depth"):
+            arrays[key] = got[key]
+        arrays["helix_angle"], arrays["sheet_angle"] = got["helix"], got["sheet_angle"]
+        arrays["helix_angle_sax"], arrays["imbrication_angle"] = got["helix_sax"], got["imbrication"]
+        arrays["dispersion"] = np.zeros(len(arrays["points"]))
+        _regions(arrays, mesh)
+        return
     fiber = _unit(_interp(arrays, mesh, arch.fiber))
     sheet = _interp(arrays, mesh, arch.sheet)
     sheet = _unit(sheet - np.einsum("ij,ij->i", sheet, fiber)[:, None] * fiber)
@@ -67,6 +91,11 @@ def _biv_fields(arrays, mesh, arch, fields):
     for name in ("helix_angle_sax", "imbrication_angle", "sheet_angle", "dispersion"):
         arrays[name] = _interp(arrays, mesh, getattr(arch, name))
     arrays["septal_depth"] = np.clip(_interp(arrays, mesh, fields.septal_depth), 0.0, 1.0)
+    _regions(arrays, mesh)
+
+
+def _regions(arrays, mesh):
+    """``region``, ``rv_region`` and the AHA label (0 on the right free wall) of pool points."""
     region = mesh.region[arrays["tet"]]
     arrays["region"] = region
     arrays["rv_region"] = rv_thirds(arrays["points"], mesh, region == RV_FREE_WALL)
@@ -88,7 +117,7 @@ def _rv_cavity_points(mesh, settings, rng):
     return pool_stage._rejection(rng, int(settings.cavity), settings.sampler, box.sample, inside, 0.3)
 
 
-def _rv_endo_arrays(mesh, coords, arch, fields, law, septum, settings, rng):
+def _rv_endo_arrays(mesh, coords, arch, fields, law, septum, settings, rng, rule=None):
     """Uniform points on the right endocardium with all wall fields and the outward normal."""
     n = int(settings.endo)
     rows = np.flatnonzero(mesh.face_tags == RV_ENDO)
@@ -102,5 +131,5 @@ def _rv_endo_arrays(mesh, coords, arch, fields, law, septum, settings, rng):
     owner = pool_stage._owners(mesh)
     arrays["face"] = face
     arrays["tet"] = owner[face] if n else np.zeros(0, np.int64)
-    _biv_fields(arrays, mesh, arch, fields)
+    _biv_fields(arrays, mesh, arch, fields, rule)
     return arrays

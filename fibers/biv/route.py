@@ -9,18 +9,19 @@ from __future__ import annotations
 
 import logging
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
-from fibers import segments, stack as stack_stage, surfaces as surface_stage
+from fibers import meshtools, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.biv import coordinates as biv_coords, mesh as biv_mesh, pools as biv_pools, regions
 from fibers.biv.inputs import RightContours
 from fibers.biv.surfaces import epi_point, fit_right
 from fibers.config import Box, Landmarks
 from fibers.io.folder import rearm_signals, signals_blocked
 from fibers.pipeline import Result, _Clock, _contour_box, _slice_facts, base_choice, summarise
-from fibers.types import RawContours
+from fibers.segment_table import rv_free_wall_rows, segment_table
+from fibers.types import EPI, RawContours
 
 log = logging.getLogger("fibers")
 
@@ -34,6 +35,19 @@ class BiVResult(Result):
     fields: object = None
     rv_region: np.ndarray | None = None
     law: biv_coords.BiVLaw | None = None
+    right_contours: RightContours | None = None
+
+    @property
+    def all_contours(self) -> RawContours:
+        """The left and right contours as one table (a label map build's ``contours.csv``)."""
+        rc = self.right_contours
+        if rc is None:
+            return self.contours
+        c = self.contours
+        return RawContours(structure=np.concatenate([c.structure, rc.structure]),
+                           slice_id=np.concatenate([c.slice_id, rc.slice_id]),
+                           points=np.concatenate([c.points, rc.points]), line=np.concatenate([c.line, rc.line]),
+                           source=c.source, slice_thickness=c.slice_thickness)
 
     # what the mesh files carry beyond the left-ventricular fields (fibers.io.outputs)
     @property
@@ -49,6 +63,10 @@ class BiVResult(Result):
     @property
     def face_names(self) -> dict:
         return dict(biv_mesh.FACE_NAMES)
+
+    def segment_rows(self) -> list[dict]:
+        """Rows of ``segments.csv`` on both ventricles (see :func:`segment_rows`)."""
+        return segment_rows(self.mesh, self.arch.helix_angle, self.aha, self.septum, self.rv_region)
 
 
 def run(contours: RawContours, right: RightContours, case, *, box: Box | None = None,
@@ -85,20 +103,50 @@ def run(contours: RawContours, right: RightContours, case, *, box: Box | None = 
             coords, arch, fields = biv_coords.compute(wall, law, zero_direction=septum.bisector)
         box = box or _contour_box(contours, case.pools.margin)
         with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
-            pool_set = biv_pools.build_pools(wall, coords, arch, fields, case.law, septum, case.pools, box=box)
+            pool_set = biv_pools.build_pools(wall, coords, arch, fields, case.law, septum, case.pools, box=box,
+                                             biv_law=law)
         caught = [str(w.message) for w in record]
     for message in caught:
         log.warning("%s", message)
     result = BiVResult(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                        septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
                        timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
-                       right=rs, fields=fields, rv_region=rv_region, law=law)
+                       right=rs, fields=fields, rv_region=rv_region, law=law,
+                       right_contours=right)
     result.summary = summarise(result)
+    result.summary["counts"]["faces"]["rv_endo"] = int(np.count_nonzero(wall.face_tags == biv_mesh.RV_ENDO))
     result.summary.update(_slice_facts(result.stack, contours, base, {}))
     result.summary["biventricular"] = biv_summary(result)
     # the resolved biventricular parameters (left out of "parameters" unless the case gave them)
     result.summary["biventricular"]["rv_wall_thickness_parameter_mm"] = float(case.rv_wall_thickness)
     return result
+
+
+def segment_rows(wall: biv_mesh.BiVMesh, helix_angle: np.ndarray, aha: np.ndarray, septum,
+                 rv_region: np.ndarray) -> list[dict]:
+    """``segments.csv`` of both ventricles: the left ventricle's rows 0-17, then the right free wall's.
+
+    The AHA rows are measured on the left ventricle's own surfaces: its endocardium and, as its
+    outer surface, the epicardium of the left free wall and the septum's right face (the right
+    endocardium over the septum), so a septal segment's thickness is the septum's, not the
+    distance across the right cavity. Row 0 is the left ventricle, septum included (every cell
+    outside the right free wall). Then ``rv`` (the whole right free wall) and ``rv1``-``rv3``
+    (basal, mid, apical thirds), from :func:`fibers.segment_table.rv_free_wall_rows`.
+    """
+    owner = meshtools.boundary_faces(wall.tets)[1]
+    free = wall.region[owner] == biv_mesh.RV_FREE_WALL
+    tags = np.where(free, 0, wall.face_tags)            # the right free wall's faces left out
+    tags = np.where(~free & (wall.face_tags == biv_mesh.RV_ENDO), EPI, tags)
+    lv_cells = wall.region != biv_mesh.RV_FREE_WALL
+    left = replace(wall, face_tags=tags)
+    rows = segment_table(left, helix_angle, aha, septum)
+    lv_ml = float(np.abs(meshtools.signed_volumes(wall.points, wall.tets[lv_cells])).sum()) / 1000.0
+    rows[0] = dict(rows[0], name="left ventricle (septum included)", volume_ml=lv_ml)
+    node_thirds = regions.rv_thirds(wall.points, wall, np.ones(len(wall.points), bool))
+    rows += rv_free_wall_rows(wall.points, wall.tets, helix_angle, rv_region, node_thirds,
+                              wall.faces[free & (wall.face_tags == biv_mesh.RV_ENDO)],
+                              wall.faces[free & (wall.face_tags == EPI)])
+    return rows
 
 
 def insertion_points(wall: biv_mesh.BiVMesh, *, fraction: float = 1.0 / 6.0) -> Landmarks:

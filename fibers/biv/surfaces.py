@@ -18,7 +18,8 @@ outer width as a function of the angle. Between slices both are joined by monoto
 (PCHIP) interpolation in height, which never overshoots the slices' values; above the most
 basal right-ventricular slice they are held up to the base plane. Below the most apical one the
 cavity closes like a half-ellipse, ``w = w_last sqrt((z - z_b) / (z_last - z_b))``, at ``z_b``
-half-way to the next slice that shows no right cavity (half a slice spacing when none does);
+where the half-ellipse through the largest widths of the last two slices ends (an ellipsoidal
+apex; kept before the next slice, which shows no right cavity; see ``_cavity_end``);
 the outer width closes one wall thickness further down with zero slope at both ends
 (``wo_last sin^2(pi/2 f)``, f the fraction of the way up), so the outer surface meets the left
 epicardium without a crease; it is kept at least ``MIN_WALL_MM`` beyond the cavity.
@@ -272,7 +273,7 @@ def fit_right(stack: Stack, lv: Surfaces, right: RightContours, *, wall_thicknes
     thickness = float(np.median(walls)) if walls.size else float(wall_thickness)
     if not right.has_outer:
         thickness = float(wall_thickness)
-    bottom = _cavity_end(stack, heights)
+    bottom = _cavity_end(stack, heights, widths)
     if len(heights) and heights[0] - bottom < 0:
         raise AssertionError("cavity end above its last slice")
     residuals = tuple(r[4] for r in rows)
@@ -370,13 +371,31 @@ def _unwrap_spans(spans):
     return out
 
 
-def _cavity_end(stack: Stack, heights: np.ndarray) -> float:
-    """Local height where the right cavity closes: half-way from its most apical slice to the
-    next slice below (half the slice spacing when there is none)."""
+def _cavity_end(stack: Stack, heights: np.ndarray, widths: np.ndarray | None = None) -> float:
+    """Local height where the right cavity closes, below its most apical slice.
+
+    The cavity's apex is taken as a half-ellipse in the long-axis section (an ellipsoidal cap,
+    the usual model of a ventricle's apex): the largest widths w1, w2 of the two most apical
+    slices, at heights z1 > z2, fix ``w^2 = A (d^2 - (z - z0)^2)`` about the base plane
+    (z0 = 0), so the end lies at depth ``d = sqrt((w1^2 z2^2 - w2^2 z1^2) / (w1^2 - w2^2))``.
+    It is kept between a quarter of the way to the next slice below and that slice (which shows
+    no right cavity); with one slice, or widths that do not fall toward the apex, the end is
+    half-way to the next slice (half the slice spacing when there is none).
+    """
     last = float(heights[0])
     below = [-sl.height for sl in stack.slices if -sl.height < last - 1e-6]
     if below:
-        return 0.5 * (last + max(below))
-    all_z = np.sort([-sl.height for sl in stack.slices])
-    step = float(np.median(np.diff(all_z))) if len(all_z) > 1 else 8.0
-    return last - 0.5 * step
+        gap = last - max(below)
+    else:
+        all_z = np.sort([-sl.height for sl in stack.slices])
+        gap = float(np.median(np.diff(all_z))) if len(all_z) > 1 else 8.0
+    half_way = last - 0.5 * gap
+    if widths is None or len(heights) < 2:
+        return half_way
+    w2, w1 = float(widths[0].max()), float(widths[1].max())   # most apical first
+    z2, z1 = -last, -float(heights[1])                         # depths below the base, z2 > z1
+    if not (w1 > w2 > 0.0):
+        return half_way
+    d2 = (w1 ** 2 * z2 ** 2 - w2 ** 2 * z1 ** 2) / (w1 ** 2 - w2 ** 2)
+    depth = float(np.sqrt(max(d2, 0.0)))
+    return -float(np.clip(depth, z2 + 0.25 * gap, z2 + gap))

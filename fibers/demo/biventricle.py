@@ -28,11 +28,14 @@ import numpy as np
 from fibers.config import Landmarks
 from fibers.demo import ventricle
 from fibers.demo.ventricle import SyntheticLV
+from fibers.masks import LabelValues
 from fibers.types import RawContours
 
 # Right-ventricular free-wall thickness of the synthetic subject, mm: adult free walls are
 # 3-5 mm thick (upper normal 5 mm: Rudski et al., J Am Soc Echocardiogr 2010, from memory).
 RV_WALL_MM = 3.5
+#: Label values of the biventricular demo's label map: LV cavity, LV wall, RV cavity, RV wall.
+BIV_LABELS = LabelValues(cavity=1, wall=2, rv=3, rv_wall=4)
 
 
 @dataclass(frozen=True)
@@ -150,6 +153,39 @@ class SyntheticBiV:
         out[self.lv.inside("endo", local)] = 1
         out[in_rv] = 2
         return out
+
+    # -- label map --------------------------------------------------------------------------------
+    def voxelise(self, *, spacing=(1.5, 1.5, 8.0), values=None, **kwargs) -> tuple[np.ndarray, np.ndarray]:
+        """Label volume and voxel-to-world affine of both ventricles (a short-axis stack).
+
+        Labels (``values``, default `BIV_LABELS`): background 0, left cavity, left wall (the
+        septum included: it is left-ventricular wall), right cavity, right free wall. Each voxel
+        takes the majority class of in-plane samples at its centre's plane, from
+        :meth:`classify`, on the grid of :func:`fibers.demo.voxels.voxelise` (``kwargs`` go
+        there: tilt, spin, handedness, supersampling, base offset).
+
+        Returns
+        -------
+        labels : ndarray (I, J, K) uint8
+        affine : ndarray (4, 4), mm
+        """
+        from fibers.demo import voxels
+
+        values = values or BIV_LABELS
+
+        def classes(local):
+            cls = self.classify(local)            # 0 outside, 1 LV cavity, 2 RV cavity, 3 wall
+            lv_wall = (cls == 3) & self.lv.inside("epi", local)
+            out = np.zeros(len(local), np.int64)
+            out[cls == 1] = 1
+            out[lv_wall] = 2
+            out[cls == 2] = 3
+            out[(cls == 3) & ~lv_wall] = 4
+            return out
+
+        codes = np.array([0, values.cavity, values.wall, values.rv, values.rv_wall])
+        return voxels.voxelise(self.lv, spacing=spacing, rv=False, values=values, classes=(classes, codes),
+                               rv_thickness=self.width + self.wall + 2.0, **kwargs)
 
     # -- landmarks and contours -------------------------------------------------------------------
     def landmarks(self, depth: float = 8.0) -> Landmarks:

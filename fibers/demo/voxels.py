@@ -23,7 +23,7 @@ from fibers.demo.ventricle import SyntheticLV, rotation_about
 def voxelise(lv: SyntheticLV, *, spacing=(1.5, 1.5, 8.0), rv: bool = True, margin: float = 15.0,
              values: LabelValues = LabelValues(), tilt_deg: float = 0.0, spin_deg: float = 20.0,
              left_handed: bool = False, supersample: int = 3, base_offset: float | None = None,
-             rv_thickness: float = 12.0) -> tuple[np.ndarray, np.ndarray]:
+             rv_thickness: float = 12.0, classes=None) -> tuple[np.ndarray, np.ndarray]:
     """Label volume and voxel-to-world affine of a synthetic ventricle.
 
     Parameters
@@ -49,7 +49,12 @@ def voxelise(lv: SyntheticLV, *, spacing=(1.5, 1.5, 8.0), rv: bool = True, margi
         Distance of the most basal slice's centre below the base plane (along the stack axis);
         default half a slice.
     rv_thickness : float, mm
-        Largest thickness of the RV crescent.
+        Largest thickness of the RV crescent (with ``classes``: how far the body reaches
+        beyond the left epicardium, for the grid's extent).
+    classes : (callable, ndarray (C,) int), optional
+        Another labelling of the body: a function from local points (N, 3) to class numbers
+        (N,) in 0..C-1, and the label value of each class (the biventricular demo's). Default:
+        background, cavity, wall and the RV crescent above.
 
     Returns
     -------
@@ -73,7 +78,7 @@ def voxelise(lv: SyntheticLV, *, spacing=(1.5, 1.5, 8.0), rv: bool = True, margi
     t_probe = np.linspace(0.0, 2 * np.pi, 181)
     z_probe = np.linspace(-lv.epi[1], lv.base_z, 181)
     r_max = float(lv.radius("epi", z_probe[:, None], t_probe[None, :]).max())
-    r_max += rv_thickness if rv else 0.0
+    r_max += rv_thickness if rv or classes is not None else 0.0
     corners = np.array([[x, y, z] for x in (-r_max, r_max) for y in (-r_max, r_max)
                         for z in (-lv.epi[1], lv.base_z)])
     proj = corners @ frame                       # (8, 3) coordinates along e1, e2, e3
@@ -96,18 +101,23 @@ def voxelise(lv: SyntheticLV, *, spacing=(1.5, 1.5, 8.0), rv: bool = True, margi
     plane = ((iu[:, None] + du[None, :])[..., None] * e1
              + (iv[:, None] + dv[None, :])[..., None] * e2)
 
-    codes = np.array([0, values.cavity, values.wall, values.rv if rv else 0])
-    labels = np.zeros((n_u, n_v, n_s), dtype=np.uint8)
-    for k in range(n_s):                          # one slice at a time keeps memory small
-        local = (plane + origin + k * ss * e3).reshape(-1, 3)
+    def lv_classes(local):
         cls = np.zeros(len(local), dtype=np.int64)
         epi = lv.inside("epi", local)
         cls[epi] = 2
         cls[lv.inside("endo", local)] = 1
         if rv:
             cls[~epi & _rv_crescent(lv, local, rv_thickness)] = 3
-        cls = cls.reshape(n_u * n_v, -1)
-        counts = np.stack([(cls == c).sum(axis=1) for c in range(4)], axis=1)
+        return cls
+
+    classify, codes = classes if classes is not None else \
+        (lv_classes, np.array([0, values.cavity, values.wall, values.rv if rv else 0]))
+    codes = np.asarray(codes)
+    labels = np.zeros((n_u, n_v, n_s), dtype=np.uint8)
+    for k in range(n_s):                          # one slice at a time keeps memory small
+        local = (plane + origin + k * ss * e3).reshape(-1, 3)
+        cls = classify(local).reshape(n_u * n_v, -1)
+        counts = np.stack([(cls == c).sum(axis=1) for c in range(len(codes))], axis=1)
         labels[:, :, k] = codes[np.argmax(counts, axis=1)].reshape(n_u, n_v)
 
     affine = np.eye(4)

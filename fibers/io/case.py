@@ -38,6 +38,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "cavity": ("int", 1, 0, 65535, "label value of the left-ventricular cavity"),
         "wall": ("int", 2, 0, 65535, "label value of the left-ventricular myocardium"),
         "rv": ("int", 3, 0, 65535, "label value of the right-ventricular cavity; 0 when the map has none"),
+        "rv_wall": ("int", 0, 0, 65535, "label value of the right-ventricular free wall (both ventricles); 0 when the map has none"),
     },
     "landmarks": {
         "rv_insertion_anterior": ("point", None, None, None, "anterior RV insertion point, mm"),
@@ -206,12 +207,16 @@ def resolve_case(data: dict, *, base: Path = Path("."), name: str = "case", path
 
 # case keys of both ventricles only (fibers.biv): left out of the resolved parameters unless
 # given, so a left-ventricular build's manifest and report stay as they were
-_BIV_ONLY = {"geometry": ("ventricles", "rv_wall_thickness"), "biventricular": tuple(SCHEMA["biventricular"])}
+_BIV_ONLY = {"geometry": ("ventricles", "rv_wall_thickness"), "biventricular": tuple(SCHEMA["biventricular"]),
+             "input.labels": ("rv_wall",)}
 
 
 def _drop_untouched_biv_keys(values: dict, data: dict) -> None:
     for table, keys in _BIV_ONLY.items():
-        given = data.get(table, {}) if isinstance(data.get(table), dict) else {}
+        given = data
+        for part in table.split("."):  # "input.labels" is [input] labels = {...}
+            given = given.get(part, {}) if isinstance(given, dict) else {}
+        given = given if isinstance(given, dict) else {}
         for key in keys:
             if key not in given:
                 values[table].pop(key, None)

@@ -92,7 +92,10 @@ def write_segments_csv(path: Path, result) -> None:
     from fibers.io.tables import write_table
     from fibers.segment_table import COLUMNS, segment_table
 
-    rows = segment_table(result.mesh, result.arch.helix_angle, result.aha, result.septum)
+    if hasattr(result, "segment_rows"):  # a route's own rows (both ventricles add the right free wall)
+        rows = result.segment_rows()
+    else:
+        rows = segment_table(result.mesh, result.arch.helix_angle, result.aha, result.septum)
     write_table(path, rows, COLUMNS)
 
 

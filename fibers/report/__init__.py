@@ -149,9 +149,16 @@ def _draw_all(build: Build, out: Path) -> dict:
     # VTK warns on stderr when it probes for an X display before falling back to off-screen
     # rendering; only its errors are of interest here
     quiet = getattr(pv, "vtk_verbosity", None)
+    from fibers.report import biventricle
+
     facts = {}
-    steps = (fig_fibers, fig_coordinates, fig_helix, fig_bullseye, fig_contours, fig_quality, fig_pools)
+    biv = biventricle.is_biv(build)
+    # both ventricles: the helix against each region's own law replaces the left ventricle's
+    helix = biventricle.fig_helix if biv else fig_helix
+    steps = (fig_fibers, fig_coordinates, helix, fig_bullseye, fig_contours, fig_quality, fig_pools)
     with quiet("error") if quiet else contextlib.nullcontext():
         for (name, _), step in zip(FIGURES, steps):
             facts.update(step(build, out / name) or {})
+        if biv:
+            facts.update(biventricle.draw(build, out))
     return facts

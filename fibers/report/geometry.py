@@ -147,8 +147,8 @@ def fig_pools(build: Build, path: Path) -> dict:
     plt = pyplot()
     b = build
     groups = []
-    for name in ("cavity", "background", "myocardium", "endo", "epi", "base"):
-        pool = b.pools.get(name) or {}
+    for name in ("cavity", "background", "myocardium", "endo", "epi", "base", "rv_cavity", "rv_endo"):
+        pool = b.pools.get(name) or {}   # rv_*: both ventricles only
         if "points" not in pool:
             continue
         if name == "background" and "region" in pool:
@@ -157,7 +157,7 @@ def fig_pools(build: Build, path: Path) -> dict:
             for code in np.unique(pool["region"]):
                 groups.append((f"background: {names[code]}", pool["points"][pool["region"] == code]))
         else:
-            groups.append(("cavity pool" if name == "cavity" else name, pool["points"]))
+            groups.append((f"{name} pool" if name in ("cavity", "rv_cavity") else name, pool["points"]))
     half_slab = 1.5
     mid_depth = 0.5 * b.cavity_depth
     fig, axes = plt.subplots(1, 2, figsize=(13, 6.6), gridspec_kw={"width_ratios": [1.0, 1.0]})
@@ -165,7 +165,7 @@ def fig_pools(build: Build, path: Path) -> dict:
     for label, pts in groups:
         rel = pts - b.centre
         colour = REGION_COLOURS.get(label, "#777777")
-        size = 2.0 if label.startswith("background") or label in ("myocardium", "cavity pool") else 3.0
+        size = 2.0 if label.startswith("background") or label in ("myocardium", "cavity pool", "rv_cavity pool") else 3.0
         la = np.abs(rel @ b.e2) < half_slab
         h = axes[0].scatter(rel[la] @ b.e1, rel[la] @ b.axis, s=size, color=colour, linewidths=0, rasterized=True,
                             label=f"{label} ({len(pts):,})")

@@ -109,8 +109,9 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     seg = facts.get("segments")
     rows = [["Myocardial volume (mL)", s.get("myocardial_volume_ml")],
             ["Myocardial volume from the tetrahedra of mesh.vtu (mL)", None if seg is None else seg["total_ml"]],
-            ["Cavity volume (mL)", s.get("cavity_volume_ml")],
-            ["LV mass (g, 1.05 g/mL)", s.get("lv_mass_g")],
+            ["Cavity volume (mL)" if "biventricular" not in s else "LV cavity volume (mL)", s.get("cavity_volume_ml")],
+            ["LV mass (g, 1.05 g/mL)" if "biventricular" not in s else
+             "Myocardial mass, both ventricles (g, 1.05 g/mL)", s.get("lv_mass_g")],
             ["Long-axis length, base plane to epicardial apex (mm)", s.get("long_axis_length_mm")],
             ["Mean wall thickness, epicardium to endocardium (mm)",
              None if seg is None or not len(seg["thickness_all"]) else float(np.mean(seg["thickness_all"]))],
@@ -119,6 +120,10 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     rows += [[f"Boundary faces: {k}", v] for k, v in (counts.get("faces") or {}).items()]
     rows += [[f"Pool points: {k}", v] for k, v in (counts.get("pools") or {}).items()]
     parts.append('<h2 id="summary">Summary</h2>' + html_table(["quantity", "value"], rows))
+    if "biv_figures" in facts:  # both ventricles: their volumes (fibers.report.biventricle)
+        from fibers.report import biventricle
+
+        parts.append(biventricle.page_section(build, facts, html_table))
 
     mq = s.get("mesh_quality") or {}
     vq = facts.get("vtk_quality") or {}
@@ -186,7 +191,12 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
     # helix check
     hrows = [[r["ring"], r["n"], r["mean_abs_deg"], r["max_abs_deg"], r["sax_mean_abs_deg"], r["sax_p99_abs_deg"]]
              for r in facts.get("helix_rings", [])]
-    parts.append('<h2 id="helix">Helix angle against the law</h2>' +
+    if "biv_helix" in facts:
+        from fibers.report import biventricle
+
+        parts.append(biventricle.helix_section(facts, html_table))
+    else:
+        parts.append('<h2 id="helix">Helix angle against the law</h2>' +
                  html_table(["ring", "wall pool points", "Laplace frame: mean |angle - law| (deg)",
                          "Laplace frame: max (deg)", "short axis: mean |angle - law| (deg)",
                          "short axis: 99th percentile (deg)"], hrows) +
@@ -201,9 +211,12 @@ def page_html(build: Build, facts: dict, timings: dict, name: str) -> str:
 
     # figures
     parts.append('<h2 id="figures">Figures</h2>')
-    for name, title in FIGURES:
+    captions = dict(CAPTIONS, **facts.get("captions", {}))  # a route's own captions win
+    titles = dict(facts.get("titles", {}))
+    for name, title in tuple(FIGURES) + tuple(facts.get("biv_figures", ())):
+        title = titles.get(name, title)
         parts.append(f'<figure><h3>{_e(title)}</h3><img src="{name}" alt="{_e(title)}">'
-                     f"<figcaption>{_e(CAPTIONS[name])}</figcaption></figure>")
+                     f"<figcaption>{_e(captions[name])}</figcaption></figure>")
 
     # warnings
     warn = m.get("warnings") or []

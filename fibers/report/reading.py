@@ -68,6 +68,7 @@ REGION_COLOURS = {
     "myocardium": "#b5523b", "endo": "#e0a526", "epi": "#5b3f8c", "base": "#2f8f5b",
     "cavity pool": "#8fbfe8", "background: cavity": "#1f4f8a", "background: above_base": "#a9a9a9",
     "background: outside": "#c9b690", "background: wall": "#ff00aa",
+    "rv_cavity pool": "#3fa7a0", "rv_endo": "#d17a9e",   # both ventricles only
 }
 
 
@@ -159,6 +160,9 @@ def load_build(folder: Path, manifest: dict) -> Build:
         "background": ("points", "region", "region_names"),
     }
     pools = {name: read_pool_arrays(folder, name, keys[name]) for name in POOL_FILES}
+    if (manifest.get("summary") or {}).get("biventricular"):  # both ventricles: the right face too
+        pools["rv_endo"] = read_pool_arrays(folder, "rv_endo", ("points", "aha_segment"))
+        pools["rv_cavity"] = read_pool_arrays(folder, "rv_cavity", ("points",))
 
     la = manifest.get("long_axis") or {}
     centre = np.asarray(la.get("base_centre_mm"), float)
@@ -217,9 +221,27 @@ def surface_part(build: Build, tag: int):
     return outer_surface(s.extract_cells(idx))
 
 
-def wall_thickness(build: Build) -> tuple[np.ndarray, np.ndarray]:
-    """Distances (K,) mm from the epicardial pool points to the endocardial surface, and labels (K,)."""
+def lv_outer_pool(build: Build) -> dict:
+    """Points on the left ventricle's outer surface, with their ``aha_segment``.
+
+    The epicardial pool; on both ventricles its points on the left ventricle (``aha_segment`` >
+    0) and the right endocardial pool's points on the septum, the septum's right face being the
+    left ventricle's outer surface there.
+    """
     epi = build.pools.get("epi") or {}
+    rv = build.pools.get("rv_endo")
+    if rv is None or "points" not in epi:
+        return epi
+    parts = [p for p in (epi, rv) if "points" in p and "aha_segment" in p]
+    keep = [np.asarray(p["aha_segment"]) > 0 for p in parts]
+    return {"points": np.concatenate([p["points"][k] for p, k in zip(parts, keep)]),
+            "aha_segment": np.concatenate([np.asarray(p["aha_segment"])[k] for p, k in zip(parts, keep)])}
+
+
+def wall_thickness(build: Build) -> tuple[np.ndarray, np.ndarray]:
+    """Distances (K,) mm from the left ventricle's outer-surface points (`lv_outer_pool`) to the
+    endocardial surface, and labels (K,)."""
+    epi = lv_outer_pool(build)
     if "points" not in epi:
         return np.zeros(0), np.zeros(0, int)
     endo = surface_part(build, 1)

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from fibers.report.drawing import pyplot, save_figure
-from fibers.report.reading import Build, INK, bullseye_place, expected_segment, segment_table
+from fibers.report.reading import Build, INK, bullseye_place, expected_segment, lv_outer_pool, segment_table
 
 
 def wedge_patches(values: np.ndarray, cmap, norm, ax, fmt):
@@ -93,7 +93,7 @@ def fig_bullseye(build: Build, path: Path) -> dict:
 
     # layout check: the labels the epicardial points carry, at their own place on the bull's-eye
     ax = axes[2]
-    epi = build.pools.get("epi") or {}
+    epi = lv_outer_pool(build)   # the epicardial pool (on both ventricles, the left ventricle's outer surface)
     layout = None
     if "points" in epi and build.septal:
         theta, r = bullseye_place(build, epi["points"])
