@@ -5,12 +5,14 @@ wall. Per segment:
 
 - ``volume_ml``: the volume of the tetrahedra labelled with the segment (their centroid's label).
 - ``thickness_mean_mm``, ``thickness_min_mm``: wall thickness sampled at every node of the
-  endocardial surface (the distance to the nearest epicardial node) and of the epicardial
-  surface (to the nearest endocardial node), each sample labelled by the segment at its node.
-  Both surfaces are sampled so that the apex (segment 17, which has no endocardium) has a
-  thickness too; the mean weights each sample by its node's share of the surface area. Node to
-  nearest node overestimates the surface-to-surface distance by about h^2 / (8 t) (h the edge
-  length, t the thickness): some 0.03 mm at 1.5 mm elements and 10 mm of wall.
+  endocardial surface (its exact distance to the epicardial surface) and of the epicardial
+  surface (to the endocardial surface), each sample labelled by the segment at its node: the
+  ``wall_thickness`` field of the mesh files at those nodes (:func:`surface_thickness`). Both
+  surfaces are sampled so that the apex (segment 17, which has no endocardium) has a thickness
+  too; the mean weights each sample by its node's share of the surface area. The distance is
+  to the faces, chords of the smooth surface: it overestimates the surface-to-surface
+  distance by at most the sagitta h^2 / (8 r) (h the edge length, r the surface's radius of
+  curvature), some 0.01 mm at 1.5 mm elements.
 - ``helix_endo_deg``, ``helix_epi_deg``: the area-weighted mean helix angle of the nodes on
   the endocardium and on the epicardium in the segment.
 
@@ -21,7 +23,6 @@ empty cells.
 from __future__ import annotations
 
 import numpy as np
-from scipy.spatial import cKDTree
 
 from fibers import meshtools, segments
 from fibers.types import ENDO, EPI, WallMesh
@@ -31,13 +32,41 @@ COLUMNS = ("segment", "name", "volume_ml", "thickness_mean_mm", "thickness_min_m
 N_SEGMENTS = 17
 
 
-def _node_areas(mesh: WallMesh, tag: int) -> tuple[np.ndarray, np.ndarray]:
-    """Nodes (K,) of the faces with ``tag`` and their share (K,) mm^2 of the area (a third of each face)."""
-    faces = mesh.faces[mesh.face_tags == tag]
-    _, areas = meshtools.triangle_normals(mesh.points, faces)
-    share = np.bincount(faces.ravel(), weights=np.repeat(areas / 3.0, 3), minlength=len(mesh.points))
+def face_node_areas(points: np.ndarray, faces: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes (K,) of triangles (F, 3) and their share (K,) mm^2 of the area (a third of each)."""
+    _, areas = meshtools.triangle_normals(points, faces)
+    share = np.bincount(faces.ravel(), weights=np.repeat(areas / 3.0, 3), minlength=len(points))
     nodes = np.unique(faces)
     return nodes, share[nodes]
+
+
+def surface_thickness(points: np.ndarray, inner: np.ndarray, outer: np.ndarray) -> tuple:
+    """Wall thickness sampled on two facing surfaces: each node's exact distance to the other.
+
+    The one measure of wall thickness of fibers (segments.csv, the report's bull's-eye and the
+    cohort table): the point-to-triangle distance of :mod:`fibers.surface_distance`.
+
+    Parameters
+    ----------
+    points : ndarray (N, 3), mm
+    inner, outer : ndarray (F, 3) int
+        The triangles of the inner (endocardial) and outer (epicardial) surface.
+
+    Returns
+    -------
+    inner_nodes, outer_nodes : ndarray (K1,), (K2,) int
+    inner_area, outer_area : ndarray (K1,), (K2,)
+        The nodes' shares of their surface's area, mm^2.
+    thickness : ndarray (K1 + K2,), mm
+        The inner nodes' distances to the outer surface, then the outer nodes' to the inner one.
+    """
+    from fibers.surface_distance import distance_to_surface
+
+    inner_nodes, inner_area = face_node_areas(points, inner)
+    outer_nodes, outer_area = face_node_areas(points, outer)
+    thickness = np.concatenate([distance_to_surface(points[inner_nodes], points, outer),
+                                distance_to_surface(points[outer_nodes], points, inner)])
+    return inner_nodes, outer_nodes, inner_area, outer_area, thickness
 
 
 def _per_segment(labels, values, weights):
@@ -54,7 +83,8 @@ def _per_segment(labels, values, weights):
     return mean, np.where(np.isfinite(mins), mins, np.nan)
 
 
-def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarray, septum) -> list[dict]:
+def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarray, septum, *,
+                  wall_thickness: np.ndarray | None = None) -> list[dict]:
     """Rows of ``segments.csv``.
 
     Parameters
@@ -66,6 +96,9 @@ def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarr
         AHA segment of each tetrahedron (0 = not labelled).
     septum : fibers.segments.Septum or None
         Labels the surface nodes; None leaves them 0.
+    wall_thickness : ndarray (N,), mm, optional
+        The coordinates' nodal ``wall_thickness``, which is this very distance on the two
+        surfaces: read there instead of measured again.
 
     Returns
     -------
@@ -78,10 +111,12 @@ def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarr
     labels = np.asarray(cell_labels, np.int64)
     volume = np.bincount(labels, weights=volumes, minlength=n)[:n] / 1000.0
     volume[0] = volumes.sum() / 1000.0
-    endo, endo_w = _node_areas(mesh, ENDO)
-    epi, epi_w = _node_areas(mesh, EPI)
-    thick = np.concatenate([cKDTree(mesh.points[epi]).query(mesh.points[endo])[0],
-                            cKDTree(mesh.points[endo]).query(mesh.points[epi])[0]])
+    inner, outer = mesh.faces[mesh.face_tags == ENDO], mesh.faces[mesh.face_tags == EPI]
+    if wall_thickness is None:
+        endo, epi, endo_w, epi_w, thick = surface_thickness(mesh.points, inner, outer)
+    else:
+        (endo, endo_w), (epi, epi_w) = face_node_areas(mesh.points, inner), face_node_areas(mesh.points, outer)
+        thick = np.asarray(wall_thickness, float)[np.concatenate([endo, epi])]
     nodes = np.concatenate([endo, epi])
     weights = np.concatenate([endo_w, epi_w])
     node_labels = segments.label_points(mesh.points[nodes], mesh, septum).astype(np.int64)
@@ -101,21 +136,13 @@ RV_SEGMENT_NAMES = {"rv": "rv free wall", "rv1": "rv free wall basal", "rv2": "r
                     "rv3": "rv free wall apical"}
 
 
-def face_node_areas(points: np.ndarray, faces: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Nodes (K,) of triangles (F, 3) and their share (K,) mm^2 of the area (a third of each)."""
-    _, areas = meshtools.triangle_normals(points, faces)
-    share = np.bincount(faces.ravel(), weights=np.repeat(areas / 3.0, 3), minlength=len(points))
-    nodes = np.unique(faces)
-    return nodes, share[nodes]
-
-
 def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndarray, cell_thirds: np.ndarray,
                       node_thirds: np.ndarray, endo_faces: np.ndarray, epi_faces: np.ndarray) -> list[dict]:
     """Rows ``rv``, ``rv1``-``rv3`` of ``segments.csv``: the right free wall and its thirds.
 
     The same columns as the AHA rows (`COLUMNS`), measured the same way on the right free
     wall's own surfaces: thickness from each node of its endocardium (the free-wall sheet of the
-    right endocardium) to the nearest node of its epicardium and back, area-weighted; helix
+    right endocardium) to its epicardium and back (`surface_thickness`), area-weighted; helix
     angles area-weighted over the nodes of each surface.
 
     Parameters
@@ -139,10 +166,7 @@ def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndar
     thirds = np.asarray(cell_thirds, np.int64)
     volume = np.bincount(thirds, weights=volumes, minlength=4)[:4] / 1000.0
     volume[0] = volumes[thirds > 0].sum() / 1000.0
-    endo, endo_w = face_node_areas(points, endo_faces)
-    epi, epi_w = face_node_areas(points, epi_faces)
-    thick = np.concatenate([cKDTree(points[epi]).query(points[endo])[0],
-                            cKDTree(points[endo]).query(points[epi])[0]])
+    endo, epi, endo_w, epi_w, thick = surface_thickness(points, endo_faces, epi_faces)
     labels = np.asarray(node_thirds, np.int64)[np.concatenate([endo, epi])]
     weights = np.concatenate([endo_w, epi_w])
     t_mean, t_min = _per_segment(labels, thick, weights)

@@ -95,7 +95,8 @@ def write_segments_csv(path: Path, result) -> None:
     if hasattr(result, "segment_rows"):  # a route's own rows (both ventricles add the right free wall)
         rows = result.segment_rows()
     else:
-        rows = segment_table(result.mesh, result.arch.helix_angle, result.aha, result.septum)
+        rows = segment_table(result.mesh, result.arch.helix_angle, result.aha, result.septum,
+                             wall_thickness=getattr(result.coords, "wall_thickness", None))
     write_table(path, rows, COLUMNS)
 
 

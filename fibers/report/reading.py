@@ -4,9 +4,9 @@ Numbers computed here, from the output files:
 
 - wall volume per AHA segment: sum of the tetrahedra's volumes per ``aha_segment`` label;
 - wall thickness per segment: for every point of the epicardial pool, the distance to the
-  closest point of the endocardial surface (a VTK cell locator on the endocardial triangles of
-  ``surfaces.vtp``: exact point-to-triangle distance), averaged over the points labelled with
-  each segment. This is the shortest-distance thickness, which is at most the thickness along
+  closest point of the endocardial triangles of ``surfaces.vtp`` (the exact point-to-triangle
+  distance of segments.csv, :mod:`fibers.surface_distance`), averaged over the points labelled
+  with each segment. This is the shortest-distance thickness, which is at most the thickness along
   the wall normal; in segment 17 it measures the apical cap;
 - helix angle measured back from the vectors: ``atan2(fiber . e_long, fiber . e_circ)`` in
   degrees, folded into [-90, 90) because a fiber is a line, compared with the law of the
@@ -240,14 +240,20 @@ def lv_outer_pool(build: Build) -> dict:
 
 def wall_thickness(build: Build) -> tuple[np.ndarray, np.ndarray]:
     """Distances (K,) mm from the left ventricle's outer-surface points (`lv_outer_pool`) to the
-    endocardial surface, and labels (K,)."""
+    endocardial surface, and labels (K,).
+
+    The exact point-to-triangle distance that segments.csv uses (:mod:`fibers.surface_distance`),
+    here at the pool's evenly spread points rather than at the mesh nodes.
+    """
+    from fibers.surface_distance import distance_to_surface
+
     epi = lv_outer_pool(build)
     if "points" not in epi:
         return np.zeros(0), np.zeros(0, int)
     endo = surface_part(build, 1)
-    pts = epi["points"]
-    _, closest = endo.find_closest_cell(pts, return_closest_point=True)
-    dist = np.linalg.norm(pts - closest, axis=1)
+    triangles = np.asarray(endo.faces).reshape(-1, 4)[:, 1:]  # every cell a triangle: [3, a, b, c]
+    pts = np.asarray(epi["points"], float)
+    dist = distance_to_surface(pts, np.asarray(endo.points, float), triangles)
     return dist, np.asarray(epi.get("aha_segment", np.zeros(len(pts), int)), int)
 
 
