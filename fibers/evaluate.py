@@ -228,6 +228,12 @@ def open(folder) -> FieldEvaluator:  # noqa: A001  (fibers.open reads like the b
 
     data = read_build(folder)
     manifest, point_data = data["manifest"], data["point_data"]
+    if (manifest.get("summary") or {}).get("biventricular"):
+        # the evaluator applies the left-ventricular rule; on both ventricles it would give the
+        # right free wall and the septum fibers of the wrong law
+        raise InputError(f"{data['folder']} is a biventricular build: fibers.open, fibers sample and fibers pools "
+                         "follow the left-ventricular rule only; use the fields of its mesh.vtu and pools/ "
+                         "(they follow both ventricles' rule)")
     missing = [k for k in NODAL_FIELDS if k not in point_data]
     if missing:
         raise InputError(f"{data['folder']}/mesh.vtu lacks the point fields {', '.join(missing)}: "

@@ -125,3 +125,7 @@ def test_cli_demo_biv(tmp_path):
     assert biv["rv_cavity_volume_ml"] == pytest.approx(truth["rv_cavity_ml"], rel=0.03)
     assert biv["wall_volume_ml"] == pytest.approx(truth["wall_ml"], rel=0.03)
     assert (out / "input" / "contours.csv").read_text().count("rv_endo") > 100
+    # the evaluator follows the left-ventricular rule: it refuses a biventricular build in one line
+    # rather than give the right ventricle the wrong fibers (common practice: refuse, do not guess)
+    assert main(["pools", str(out), "--seed", "1", "--out", str(tmp_path / "again")]) == 2
+    assert not (tmp_path / "again").exists()
