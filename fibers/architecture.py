@@ -375,24 +375,24 @@ def _orthonormal_frame(e_rad, e_long, e_circ):
         raise InputError("orient: the frame contains NaN or infinite values; recompute the "
                          "cardiac coordinates")
     r, lg, c = arrays
+    # The fallbacks are computed only for the rows that need them (almost never).
     # e_rad = e_circ x e_long in a right-handed frame; use it where the given e_rad is zero.
-    r = _unit_rows(r, cross(c, lg))
+    r = _unit_rows(r, lambda rows: cross(c[rows], lg[rows]))
     lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
     # e_long = e_rad x e_circ; use it where the given e_long is parallel to e_rad.
-    alt = cross(r, c)
-    lg = _unit_rows(lg, alt)
+    lg = _unit_rows(lg, lambda rows: cross(r[rows], c[rows]))
     lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
-    lg = _unit_rows(lg, _any_orthogonal(r))
+    lg = _unit_rows(lg, lambda rows: _any_orthogonal(r[rows]))
     return r, lg, cross(lg, r)
 
 
 def _unit_rows(v, fallback):
-    """Unit rows of ``v``; rows shorter than 1e-9 taken from ``fallback`` (then any unit)."""
-    norm = np.linalg.norm(v, axis=1)
+    """Unit rows of ``v``; rows shorter than 1e-9 taken from ``fallback(rows)`` (then any unit)."""
+    norm = np.sqrt(np.einsum("ij,ij->i", v, v))
     bad = norm < 1e-9
     if np.any(bad):
         v = v.copy()
-        v[bad] = fallback[bad]
+        v[bad] = fallback(np.flatnonzero(bad))
         norm = np.linalg.norm(v, axis=1)
         still = norm < 1e-9
         v[still] = [1.0, 0.0, 0.0]

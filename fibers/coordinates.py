@@ -201,13 +201,13 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
     g_a = fem.cell_to_nodes(tets, g_a_cell, volumes, n_points=len(points))
 
     radial_guess = points - mesh.axis.base_centre
-    e_rad = _unit_with_fallback(g_t, _normalise(radial_guess, -axis_dir))
+    e_rad = _unit_with_fallback(g_t, lambda rows: _normalise(radial_guess[rows], -axis_dir))
     e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
     e_circ = cross(e_long, e_rad)
 
-    cell_e_rad = _unit_with_fallback(g_t_cell, _normalise(e_rad[tets].mean(axis=1), -axis_dir))
+    cell_e_rad = _unit_with_fallback(g_t_cell, lambda rows: _normalise(e_rad[tets[rows]].mean(axis=1), -axis_dir))
     cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero,
-                                scale=float(np.median(np.linalg.norm(g_a, axis=1))))
+                                scale=float(np.median(_row_norm(g_a))))
     cell_e_circ = cross(cell_e_long, cell_e_rad)
 
     centroids = points[tets].mean(axis=1)
@@ -386,14 +386,17 @@ def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
     """Unit e_long (K, 3) orthogonal to e_rad, with the blended fallbacks of the module doc."""
     tangential = g_long - np.einsum("ij,ij->i", g_long, e_rad)[:, None] * e_rad
     if scale is None:
-        scale = float(np.median(np.linalg.norm(g_long, axis=1)))
-    axis_t = axis_dir - np.einsum("ij,j->i", e_rad, axis_dir)[:, None] * e_rad
-    zero_t = zero - np.einsum("ij,j->i", e_rad, zero)[:, None] * e_rad
-    # Last resort, only where e_rad is parallel to both the axis and the zero direction (which
-    # are orthogonal, so never both): any vector orthogonal to e_rad.
-    other = cross(e_rad, zero)
-    fallback = _unit_with_fallback(zero_t, _normalise(other, axis_dir), scale=1.0)
-    fallback = _unit_with_fallback(axis_t, fallback, scale=1.0)
+        scale = float(np.median(_row_norm(g_long)))
+
+    def fallback(rows):
+        # the axis in the tangent plane, else the zero direction there; last resort, only where
+        # e_rad is parallel to both (which are orthogonal, so never both): any vector orthogonal
+        r = e_rad[rows]
+        axis_t = axis_dir - np.einsum("ij,j->i", r, axis_dir)[:, None] * r
+        zero_t = zero - np.einsum("ij,j->i", r, zero)[:, None] * r
+        along_zero = _unit_with_fallback(zero_t, lambda k: _normalise(cross(r[k], zero), axis_dir), scale=1.0)
+        return _unit_with_fallback(axis_t, lambda k: along_zero[k], scale=1.0)
+
     e_long = _unit_with_fallback(tangential, fallback, scale=max(scale, 1e-300))
     # Blending two vectors orthogonal to e_rad stays orthogonal; repeat the projection only to
     # remove rounding.
@@ -402,38 +405,46 @@ def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
 
 
 def _unit_with_fallback(primary, fallback, *, scale=None):
-    """Normalise ``primary`` rows, blending smoothly toward unit ``fallback`` rows where short.
+    """Normalise ``primary`` rows, blending smoothly toward unit fallback rows where short.
 
-    ``scale`` is the length taken as "full size" (default: the median row length); rows shorter
-    than ``_BLEND_LOW * scale`` are replaced by the fallback, rows longer than
-    ``_BLEND_HIGH * scale`` are kept, with a cubic smoothstep in between.
+    ``fallback(rows)`` gives the unit fallback vectors (len(rows), 3) of the rows it is asked
+    for: only those of the short rows are computed. ``scale`` is the length taken as "full
+    size" (default: the median row length); rows shorter than ``_BLEND_LOW * scale`` are
+    replaced by the fallback, rows longer than ``_BLEND_HIGH * scale`` are kept, with a cubic
+    smoothstep in between.
     """
     norm = _row_norm(primary)
     if scale is None:
         scale = float(np.median(norm))
     if not np.isfinite(scale) or scale <= 0.0:
-        return np.array(fallback, dtype=float, copy=True)
+        return np.array(fallback(np.arange(len(primary))), dtype=float)
     s = np.clip((norm / scale - _BLEND_LOW) / (_BLEND_HIGH - _BLEND_LOW), 0.0, 1.0)
     w = s * s * (3.0 - 2.0 * s)
     unit = primary / np.where(norm > 0, norm, 1.0)[:, None]
-    blended = w[:, None] * unit + (1.0 - w)[:, None] * fallback
+    rows = np.flatnonzero(w < 1.0)
+    if rows.size == 0:
+        return unit
+    fb, w, u = np.asarray(fallback(rows), float), w[rows][:, None], unit[rows]
+    blended = w * u + (1.0 - w) * fb
     # If primary and fallback point nearly opposite, the blend can cancel; take the heavier one.
     cancelled = _row_norm(blended) < 0.25
-    blended[cancelled] = np.where((w[cancelled] >= 0.5)[:, None], unit[cancelled],
-                                  fallback[cancelled])
-    return _normalise(blended, fallback)
+    blended[cancelled] = np.where(w[cancelled] >= 0.5, u[cancelled], fb[cancelled])
+    unit[rows] = _normalise(blended, fb)
+    return unit
 
 
 def _normalise(v, fallback):
-    """Unit rows of ``v``; rows of (near) zero length become ``fallback`` (a row or a vector)."""
+    """Unit rows of ``v``; rows of (near) zero length become the fallback: a vector, rows like
+    ``v``, or a function of the row indices giving those rows."""
     v = np.asarray(v, dtype=float)
     norm = _row_norm(v)
     ok = norm > 1e-12
     # divide every row (no boolean gathers on the hot path), then mend the few short ones
     out = v / np.where(ok, norm, 1.0)[:, None]
     if not np.all(ok):
-        fb = np.broadcast_to(np.asarray(fallback, float), v.shape)
-        out[~ok] = fb[~ok] / np.linalg.norm(fb[~ok], axis=1)[:, None]
+        bad = np.flatnonzero(~ok)
+        fb = fallback(bad) if callable(fallback) else np.broadcast_to(np.asarray(fallback, float), v.shape)[bad]
+        out[bad] = fb / np.linalg.norm(fb, axis=1)[:, None]
     return out
 
 
