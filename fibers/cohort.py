@@ -23,7 +23,8 @@ file, the same resolved parameters); a finished subject's folder is in place the
 build ends (the build renames a complete temporary folder), so an interruption loses none.
 
 The table ``DIR/cohort.csv`` is rewritten after every subject, so it is current whenever the
-run stops; its rows of skipped subjects are carried over from the table of the earlier run.
+run stops; the rows of skipped subjects are read again from their folders (manifest and
+segments.csv), a few milliseconds each.
 """
 
 from __future__ import annotations
@@ -32,6 +33,7 @@ import hashlib
 import json
 import logging
 import os
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -347,7 +349,6 @@ def run_cohort(subjects: list[Subject], out, *, options: Options = Options(), wo
     out = Path(out)
     table_io.check_cohort_folder(out)
     out.mkdir(parents=True, exist_ok=True)
-    earlier = {r["subject"]: r for r in table_io.read_table(out)}
     progress = Progress(total=len(subjects))
     notify = on_progress or (lambda p: None)
     rows: dict[str, dict] = {}
@@ -355,34 +356,26 @@ def run_cohort(subjects: list[Subject], out, *, options: Options = Options(), wo
     for s in subjects:
         t0 = time.perf_counter()
         if up_to_date(s, out / s.name, options):
-            rows[s.name] = _skipped_row(s, out / s.name, earlier.get(s.name), time.perf_counter() - t0)
+            rows[s.name] = _skipped_row(s, out / s.name, time.perf_counter() - t0)
             progress.skipped += 1
         else:
             todo.append(s)
     notify(progress)
     _write_tables(out, subjects, rows)
+    closing = None
     if todo:
-        _run_on_dask(todo, out, options, workers, memory_per_worker, scheduler, rows, progress, notify,
-                     lambda: _write_tables(out, subjects, rows))
-    _write_tables(out, subjects, rows, html=True)
+        closing = _run_on_dask(todo, out, options, workers, memory_per_worker, scheduler, rows, progress, notify,
+                               lambda: _write_tables(out, subjects, rows))
+    _write_tables(out, subjects, rows, html=True)  # while the cluster shuts down
+    if closing is not None:
+        closing.join()
     return [rows[s.name] for s in subjects]
 
 
-def _skipped_row(subject: Subject, folder: Path, earlier: dict | None, seconds: float) -> dict:
-    """The row of an up-to-date subject: the manifest's figures, the thickness of the earlier table.
-
-    The per-segment thickness needs the mesh read back, so it is carried over from the earlier
-    table when that row describes the same build (same figures from the manifest); otherwise
-    (an interrupted first run lost the row, the folder was rebuilt by hand) it is read again.
-    """
-    from fibers.io.cohort import FIGURES, THICKNESS
-
+def _skipped_row(subject: Subject, folder: Path, seconds: float) -> dict:
+    """The row of an up-to-date subject, from its own manifest and segments.csv."""
     manifest = json.loads((folder / "manifest.json").read_text())
-    figures = manifest_figures(manifest)
-    if earlier is not None and all(earlier.get(k) == figures[k] for k in FIGURES):
-        row = {**{k: earlier.get(k) for k in THICKNESS}, **figures}
-    else:
-        row = subject_figures(folder, manifest)
+    row = subject_figures(folder, manifest)
     row.update(subject=subject.name, status="skipped", error="", seconds=round(seconds, 3), case=str(subject.case))
     return row
 
@@ -398,11 +391,18 @@ def _write_tables(out: Path, subjects, rows: dict, html: bool = False) -> None:
         write_cohort_page(out, ordered)
 
 
-def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress, notify, save) -> None:
+def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress, notify, save):
+    """Build ``todo`` on Dask, filling ``rows``; returns the thread that shuts the cluster down.
+
+    The cluster closes on that thread (about 0.5 s) while the caller draws cohort.html, whose
+    plotting library is imported meanwhile too, while the client only waits for the workers.
+    """
     from distributed import wait
 
     client, cluster, slots = _connect(workers, memory, scheduler)
     progress.slots = slots
+    finished_all = False
+    threading.Thread(target=_import_drawing, name="fibers-cohort-import", daemon=True).start()
     try:
         link = _dashboard(client)
         log.info("cohort: %d to build on %d worker%s%s", len(todo), slots, "" if slots == 1 else "s",
@@ -435,12 +435,26 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
             progress.running = min(slots, len(pending))
             save()
             notify(progress)
+        finished_all = True
     finally:
-        _close(client, cluster)
+        closing = threading.Thread(target=_close, args=(client, cluster), name="fibers-cohort-close")
+        closing.start()
+        if not finished_all:  # interrupted or failed: nothing more to draw, close before leaving
+            closing.join()
         from fibers.io.folder import remove_stale
 
         for s in todo:  # a worker killed mid-build cannot remove its temporary folder
             remove_stale(out / s.name)
+    return closing
+
+
+def _import_drawing() -> None:
+    try:
+        from fibers.report.drawing import pyplot
+
+        pyplot()
+    except Exception:  # only a head start: cohort.html imports it again and reports any error
+        pass
 
 
 def _row_of(future, subject: Subject) -> dict:
