@@ -283,7 +283,7 @@ def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = Fa
              "e_circ": coords.e_circ, "transmural": coords.transmural,
              "thickness_fraction": coords.thickness_fraction, "apicobasal": coords.apicobasal,
              "circumferential": coords.circumferential}
-    cells = {"points": mesh.points[mesh.tets].mean(axis=1), "e_rad": coords.cell_e_rad,
+    cells = {"points": mesh.cell_centroids, "e_rad": coords.cell_e_rad,
              "e_long": coords.cell_e_long, "e_circ": coords.cell_e_circ,
              "transmural": coords.cell_transmural,
              "thickness_fraction": coords.cell_thickness_fraction,

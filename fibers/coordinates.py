@@ -210,7 +210,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
                                 scale=float(np.median(_row_norm(g_a))))
     cell_e_circ = cross(cell_e_long, cell_e_rad)
 
-    centroids = points[tets].mean(axis=1)
+    centroids = mesh.cell_centroids
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,

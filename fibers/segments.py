@@ -277,4 +277,4 @@ def _unit(v):
 
 def label_cells(mesh: WallMesh, septum: Septum | None) -> np.ndarray:
     """AHA segment (M,) int8 of each tetrahedron, taken at its centroid."""
-    return label_points(mesh.points[mesh.tets].mean(axis=1), mesh, septum)
+    return label_points(mesh.cell_centroids, mesh, septum)

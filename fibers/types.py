@@ -141,6 +141,11 @@ class WallMesh:
 
         return signed_volumes(self.points, self.tets)
 
+    @cached_property
+    def cell_centroids(self) -> np.ndarray:
+        """Centroids (M, 3) mm of the tetrahedra, computed once (segments, frames, fibers)."""
+        return self.points[self.tets].mean(axis=1)
+
     def face_nodes(self, tag: int) -> np.ndarray:
         """Sorted unique node indices on the boundary faces with this tag."""
         return np.unique(self.faces[self.face_tags == tag])

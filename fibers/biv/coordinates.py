@@ -192,7 +192,7 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
     zero = mesh.axis.reference if zero_direction is None else np.asarray(zero_direction, float)
     zero = zero - (zero @ axis_dir) * axis_dir
     zero /= np.linalg.norm(zero)
-    centroids = points[tets].mean(axis=1)
+    centroids = mesh.cell_centroids
     coords = CardiacCoordinates(
         transmural=phi_epi, apicobasal=position,
         circumferential=_angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero),

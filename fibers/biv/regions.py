@@ -42,4 +42,4 @@ def rv_thirds(points_world: np.ndarray, mesh: BiVMesh, in_free_wall: np.ndarray)
 
 def rv_cells(mesh: BiVMesh) -> np.ndarray:
     """Right free-wall third (M,) int8 of each cell (0 outside the right free wall)."""
-    return rv_thirds(mesh.points[mesh.tets].mean(axis=1), mesh, mesh.region == RV_FREE_WALL)
+    return rv_thirds(mesh.cell_centroids, mesh, mesh.region == RV_FREE_WALL)
