@@ -97,8 +97,10 @@ class CardiacCoordinates:
         way round, the wall thickness there. segments.csv, the report and the cohort table
         average it per segment.
     thickness_fraction, cell_thickness_fraction : ndarray (N,), (M,)
-        Fraction of the wall thickness from the endocardium (0) to the epicardium (1), see
-        `thickness_fraction`; per element the mean over its vertices.
+        Fraction of the wall thickness from the endocardium (0) to the epicardium (1),
+        ``d_endo / (d_endo + d_epi)`` from `surface_distances`; per element the mean over its
+        vertices. On a spherical shell this is ``(r - ri) / (ro - ri)``; unlike the Laplace
+        depth it does not crowd toward the endocardium where the wall is curved.
     frame_quality, cell_frame_quality : ndarray (N,), (M,), mm
         Distance to the long axis (nodes; element centroids), see `frame_quality`.
     """
@@ -227,27 +229,6 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
 # circumferential direction turns once around the axis, so neighbouring frames differ by
 # tens of degrees (measured on the demo ventricle, see the README, "The apex").
 FRAME_QUALITY_THRESHOLD_MM = 3.5
-
-
-def thickness_fraction(mesh: WallMesh, points: np.ndarray | None = None) -> np.ndarray:
-    """Fraction of the wall thickness through the wall, 0 on the endocardium, 1 on the epicardium.
-
-    ``d_endo / (d_endo + d_epi)`` with ``d_endo`` and ``d_epi`` the exact distances (mm) from the
-    point to the endocardial and epicardial faces of the mesh. On a spherical shell this is
-    ``(r - ri) / (ro - ri)``; unlike the Laplace depth it does not crowd toward the
-    endocardium where the wall is curved.
-
-    Parameters
-    ----------
-    mesh : WallMesh
-    points : ndarray (K, 3), mm, optional
-        Default: the mesh nodes.
-
-    Returns
-    -------
-    ndarray (K,), in [0, 1]
-    """
-    return _fraction(*surface_distances(mesh, points))
 
 
 def surface_distances(mesh: WallMesh, points: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:

@@ -106,28 +106,40 @@ def segment_table(mesh: WallMesh, helix_angle: np.ndarray, cell_labels: np.ndarr
         Keys `COLUMNS`; row 0 the whole wall, then segments 1-17. Floats are NaN where a segment
         has no sample.
     """
+    inner, outer = mesh.faces[mesh.face_tags == ENDO], mesh.faces[mesh.face_tags == EPI]
+    if wall_thickness is None:
+        samples = surface_thickness(mesh.points, inner, outer)
+    else:
+        (endo, endo_w), (epi, epi_w) = face_node_areas(mesh.points, inner), face_node_areas(mesh.points, outer)
+        samples = (endo, epi, endo_w, epi_w, np.asarray(wall_thickness, float)[np.concatenate([endo, epi])])
+    sampled = np.concatenate(samples[:2])
+    node_labels = segments.label_points(mesh.points[sampled], mesh, septum)
+    names = {0: "whole wall", **segments.SEGMENT_NAMES}
+    return _rows([(s, names[s]) for s in range(N_SEGMENTS + 1)], np.abs(mesh.cell_volumes), cell_labels,
+                 samples, node_labels, helix_angle)
+
+
+def _rows(keys: list, volumes: np.ndarray, cell_labels: np.ndarray, samples: tuple, node_labels: np.ndarray,
+          helix_angle: np.ndarray) -> list[dict]:
+    """Rows (`COLUMNS`) for regions 0..len(keys)-1 of a label; region 0 is all the cells given.
+
+    ``samples`` is the output of `surface_thickness`; ``node_labels`` the region of each
+    sampled node (inner nodes first).
+    """
     n = N_SEGMENTS + 1
-    volumes = np.abs(mesh.cell_volumes)
     labels = np.asarray(cell_labels, np.int64)
     volume = np.bincount(labels, weights=volumes, minlength=n)[:n] / 1000.0
     volume[0] = volumes.sum() / 1000.0
-    inner, outer = mesh.faces[mesh.face_tags == ENDO], mesh.faces[mesh.face_tags == EPI]
-    if wall_thickness is None:
-        endo, epi, endo_w, epi_w, thick = surface_thickness(mesh.points, inner, outer)
-    else:
-        (endo, endo_w), (epi, epi_w) = face_node_areas(mesh.points, inner), face_node_areas(mesh.points, outer)
-        thick = np.asarray(wall_thickness, float)[np.concatenate([endo, epi])]
-    nodes = np.concatenate([endo, epi])
-    weights = np.concatenate([endo_w, epi_w])
-    node_labels = segments.label_points(mesh.points[nodes], mesh, septum).astype(np.int64)
-    t_mean, t_min = _per_segment(node_labels, thick, weights)
-    k = len(endo)
-    h_endo, _ = _per_segment(node_labels[:k], helix_angle[endo], endo_w)
-    h_epi, _ = _per_segment(node_labels[k:], helix_angle[epi], epi_w)
-    names = {0: "whole wall", **segments.SEGMENT_NAMES}
-    return [{"segment": s, "name": names[s], "volume_ml": float(volume[s]),
-             "thickness_mean_mm": float(t_mean[s]), "thickness_min_mm": float(t_min[s]),
-             "helix_endo_deg": float(h_endo[s]), "helix_epi_deg": float(h_epi[s])} for s in range(n)]
+    inner, outer, inner_w, outer_w, thick = samples
+    node_labels = np.asarray(node_labels, np.int64)
+    t_mean, t_min = _per_segment(node_labels, thick, np.concatenate([inner_w, outer_w]))
+    k = len(inner)
+    h_endo, _ = _per_segment(node_labels[:k], helix_angle[inner], inner_w)
+    h_epi, _ = _per_segment(node_labels[k:], helix_angle[outer], outer_w)
+    return [{"segment": key, "name": name, "volume_ml": float(volume[i]),
+             "thickness_mean_mm": float(t_mean[i]), "thickness_min_mm": float(t_min[i]),
+             "helix_endo_deg": float(h_endo[i]), "helix_epi_deg": float(h_epi[i])}
+            for i, (key, name) in enumerate(keys)]
 
 
 # -- both ventricles: the right free wall's thirds ------------------------------------------------
@@ -136,7 +148,7 @@ RV_SEGMENT_NAMES = {"rv": "rv free wall", "rv1": "rv free wall basal", "rv2": "r
                     "rv3": "rv free wall apical"}
 
 
-def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndarray, cell_thirds: np.ndarray,
+def rv_free_wall_rows(points: np.ndarray, cell_volumes: np.ndarray, helix_angle: np.ndarray, cell_thirds: np.ndarray,
                       node_thirds: np.ndarray, endo_faces: np.ndarray, epi_faces: np.ndarray) -> list[dict]:
     """Rows ``rv``, ``rv1``-``rv3`` of ``segments.csv``: the right free wall and its thirds.
 
@@ -148,7 +160,8 @@ def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndar
     Parameters
     ----------
     points : ndarray (N, 3), mm
-    tets : ndarray (M, 4) int
+    cell_volumes : ndarray (M,), mm^3
+        Volumes of the mesh's tetrahedra (``WallMesh.cell_volumes``).
     helix_angle : ndarray (N,), degrees
     cell_thirds : ndarray (M,) int
         1 basal, 2 mid, 3 apical third of the right free wall, 0 elsewhere.
@@ -162,17 +175,9 @@ def rv_free_wall_rows(points: np.ndarray, tets: np.ndarray, helix_angle: np.ndar
     list of dict
         ``rv`` (the whole free wall) then ``rv1``-``rv3``.
     """
-    volumes = np.abs(meshtools.signed_volumes(points, tets))
     thirds = np.asarray(cell_thirds, np.int64)
-    volume = np.bincount(thirds, weights=volumes, minlength=4)[:4] / 1000.0
-    volume[0] = volumes[thirds > 0].sum() / 1000.0
-    endo, epi, endo_w, epi_w, thick = surface_thickness(points, endo_faces, epi_faces)
-    labels = np.asarray(node_thirds, np.int64)[np.concatenate([endo, epi])]
-    weights = np.concatenate([endo_w, epi_w])
-    t_mean, t_min = _per_segment(labels, thick, weights)
-    h_endo, _ = _per_segment(labels[:len(endo)], helix_angle[endo], endo_w)
-    h_epi, _ = _per_segment(labels[len(endo):], helix_angle[epi], epi_w)
-    return [{"segment": key, "name": name, "volume_ml": float(volume[k]),
-             "thickness_mean_mm": float(t_mean[k]), "thickness_min_mm": float(t_min[k]),
-             "helix_endo_deg": float(h_endo[k]), "helix_epi_deg": float(h_epi[k])}
-            for k, (key, name) in enumerate(RV_SEGMENT_NAMES.items())]
+    free = thirds > 0
+    samples = surface_thickness(points, endo_faces, epi_faces)
+    node_labels = np.asarray(node_thirds, np.int64)[np.concatenate(samples[:2])]
+    return _rows(list(RV_SEGMENT_NAMES.items()), np.abs(np.asarray(cell_volumes)[free]), thirds[free], samples,
+                 node_labels, helix_angle)

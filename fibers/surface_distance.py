@@ -1,6 +1,6 @@
 """Exact distances from points to a triangulated surface, vectorised.
 
-Used for the thickness depth of the wall (:func:`fibers.coordinates.thickness_fraction`). The
+Used for the thickness depth of the wall (:func:`fibers.coordinates.surface_distances`). The
 candidates of each point are the ``candidates`` triangles whose centroids lie nearest to it (a
 k-d tree over the centroids); the distance to each candidate is the exact point-to-triangle
 distance, by the region test of Ericson, Real-Time Collision Detection (2005), section 5.1.5,

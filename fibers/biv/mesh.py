@@ -350,6 +350,6 @@ def volumes_ml(mesh: BiVMesh) -> dict[str, float]:
         a, b, c = (rel[f[:, k]] for k in range(3))
         return float(-np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0) / 1000.0
 
-    vol = meshtools.signed_volumes(mesh.points, mesh.tets) / 1000.0
+    vol = mesh.cell_volumes / 1000.0
     per = {f"{name}_ml": float(vol[mesh.region == k].sum()) for k, name in REGION_NAMES.items()}
     return {"lv_cavity_ml": cavity(ENDO), "rv_cavity_ml": cavity(RV_ENDO), "wall_ml": float(vol.sum()), **per}

@@ -140,10 +140,10 @@ def segment_rows(wall: biv_mesh.BiVMesh, helix_angle: np.ndarray, aha: np.ndarra
     lv_cells = wall.region != biv_mesh.RV_FREE_WALL
     left = replace(wall, face_tags=tags)
     rows = segment_table(left, helix_angle, aha, septum)
-    lv_ml = float(np.abs(meshtools.signed_volumes(wall.points, wall.tets[lv_cells])).sum()) / 1000.0
+    lv_ml = float(np.abs(wall.cell_volumes[lv_cells]).sum()) / 1000.0
     rows[0] = dict(rows[0], name="left ventricle (septum included)", volume_ml=lv_ml)
     node_thirds = regions.rv_thirds(wall.points, wall, np.ones(len(wall.points), bool))
-    rows += rv_free_wall_rows(wall.points, wall.tets, helix_angle, rv_region, node_thirds,
+    rows += rv_free_wall_rows(wall.points, wall.cell_volumes, helix_angle, rv_region, node_thirds,
                               wall.faces[free & (wall.face_tags == biv_mesh.RV_ENDO)],
                               wall.faces[free & (wall.face_tags == EPI)])
     return rows
