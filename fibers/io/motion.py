@@ -73,8 +73,7 @@ def read_build_mesh(folder, *, finished: bool = True) -> BuildMesh:
         Not a build folder, an unreadable mesh, missing frames, or a mesh.vtu changed since
         the build (its checksum differs from the manifest's).
     """
-    import meshio
-
+    from fibers.io.build import read_volume_mesh
     from fibers.io.outputs import read_manifest
 
     folder = Path(folder)
@@ -83,27 +82,25 @@ def read_build_mesh(folder, *, finished: bool = True) -> BuildMesh:
                          "give the --out folder of fibers build or fibers demo")
     try:
         manifest = read_manifest(folder) if finished else {}
-        mesh = meshio.read(folder / "mesh.vtu")
+        mesh = read_volume_mesh(folder / "mesh.vtu")
     except (OSError, ValueError, KeyError) as err:
         raise InputError(f"{folder}: cannot read mesh.vtu or manifest.json ({type(err).__name__}); "
                          "build the folder again") from None
-    blocks = [(i, b) for i, b in enumerate(mesh.cells) if b.type in ("tetra", "tetra10")]
-    if not blocks:
+    if mesh is None:
         raise InputError(f"{folder}/mesh.vtu holds no tetrahedra; build the folder again")
-    tets = np.concatenate([b.data[:, :4] for _, b in blocks]).astype(np.int64)
-    order = 2 if all(b.type == "tetra10" for _, b in blocks) else 1
+    tets = np.ascontiguousarray(mesh.cells[:, :4], dtype=np.int64)
+    order = 2 if mesh.cell_type == "tetra10" else 1
     cells = tets
     if order == 2:
-        cells = _vtk_tetra10(folder, np.asarray(mesh.points, np.float64),
-                             np.concatenate([b.data for _, b in blocks]).astype(np.int64))
+        cells = _vtk_tetra10(folder, np.asarray(mesh.points, np.float64), mesh.cells.astype(np.int64))
         order = 2 if cells.shape[1] == 10 else 1
     need = ("e_rad", "e_long")
     missing = [k for k in need if k not in mesh.point_data]
     if missing:
         raise InputError(f"{folder}/mesh.vtu lacks the point fields {', '.join(missing)}; "
                          "it was not written by this version of fibers: build it again")
-    cell_fields = {k: np.concatenate([mesh.cell_data[k][i] for i, _ in blocks])
-                   for k in mesh.cell_data if k in ("aha_segment", "fiber_cell", "sheet_cell", "sheet_normal_cell")}
+    cell_fields = {k: np.asarray(v) for k, v in mesh.cell_data.items()
+                   if k in ("aha_segment", "fiber_cell", "sheet_cell", "sheet_normal_cell")}
     labels = np.asarray(cell_fields.pop("aha_segment", np.zeros(len(tets))), np.int64).ravel()
     points = np.asarray(mesh.points, np.float64)
     checksum = mesh_checksum(points, tets)

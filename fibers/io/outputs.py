@@ -174,9 +174,11 @@ def write_xdmf(folder: Path, fem: FemMesh) -> None:
     import meshio
 
     volume, face = fem.types[:2]
-    meshio.Mesh(fem.points, [(volume, fem.cells)], point_data=fem.point_data,
+    # 32-bit node numbers when they fit (every XDMF reader takes them): 9 MB less at 550k cells
+    index = np.int32 if len(fem.points) < 2**31 - 1 else np.int64
+    meshio.Mesh(fem.points, [(volume, fem.cells.astype(index, copy=False))], point_data=fem.point_data,
                 cell_data={k: [v] for k, v in fem.cell_data.items()}).write(folder / "mesh.xdmf", compression=None)
-    meshio.Mesh(fem.points, [(face, fem.faces)],
+    meshio.Mesh(fem.points, [(face, fem.faces.astype(index, copy=False))],
                 cell_data={"boundary": [fem.face_tags.astype(np.int32)]}).write(folder / "facets.xdmf",
                                                                                 compression=None)
     segments = {name: (number, 3) for number, name in SEGMENT_NAMES.items() if number > 0}

@@ -9,7 +9,7 @@ batches every array of the file. ``np.load(path)["metadata.json"]`` gives its by
 `read_pool` turns it back into the ``*_names`` arrays of the Python API.
 
 The VTP copy holds the per-point arrays as point data (vectors as 3-component arrays, name tables
-as field data), for viewers.
+as field data), for viewers: fields in single precision, the points in double.
 """
 
 from __future__ import annotations
@@ -80,8 +80,9 @@ def _write_vtp(path: Path, arrays: dict) -> None:
         if value.dtype.kind == "U":
             texts[key] = value.tolist()
         elif len(value) == n:
-            # VTK has no int8 reader everywhere; widen small integers for viewers.
-            point_data[key] = value.astype(np.int32) if value.dtype.kind in "iub" else value
+            # VTK has no int8 reader everywhere; widen small integers for viewers. Fields in
+            # single precision: a viewer's copy (the npz keeps float64), about half the bytes.
+            point_data[key] = value.astype(np.int32 if value.dtype.kind in "iub" else np.float32)
     write_polydata(path, points, vertices=True, point_data=point_data, field_data=texts)
 
 

@@ -1,17 +1,17 @@
-"""VTK XML files (``.vtu``, ``.vtp``) written with numpy alone.
+"""VTK XML files (``.vtu``, ``.vtp``) written and read with numpy alone.
 
-Each array is inline, base64 encoded with a UInt64 header (``format="binary"``), the layout
-meshio writes and reads fastest: ParaView and pyvista read it too. (Raw appended bytes would
-write faster still, but meshio re-encodes them in Python: 4.8 s to read a 550k-tetrahedron mesh
-against 0.8 s.) Writing that mesh through meshio took 0.9 s (its own assembly, and a second pass
-to add the field data it cannot write); this writer takes about 0.25 s.
-Reading stays with meshio (``meshio.read``): a reader of our own was no faster.
+Every array is stored raw in one appended block (``<AppendedData encoding="raw">``, a UInt64
+byte count before each array), the layout VTK, ParaView and pyvista read fastest. Raw bytes
+need no base64 pass and are a quarter smaller: at 547k tetrahedra ``mesh.vtu`` is written in
+about 0.1 s instead of 0.5 s. meshio reads these files too, but re-encodes the block in Python
+(about 5 s at that size), so build folders are read back by :func:`read_grid`, which maps the
+file in one read and views its arrays in place (a few hundredths of a second).
 """
 
 from __future__ import annotations
 
-import base64
 import json
+import xml.etree.ElementTree as ET
 from pathlib import Path
 
 import numpy as np
@@ -21,13 +21,20 @@ VTK_TYPES = {"vertex": 1, "line": 3, "triangle": 5, "tetra": 10, "line3": 21, "t
 NODES_PER_CELL = {"vertex": 1, "line": 2, "triangle": 3, "tetra": 4, "line3": 3, "triangle6": 6, "tetra10": 10}
 _VTK_DTYPES = {"f8": "Float64", "f4": "Float32", "i8": "Int64", "i4": "Int32", "i2": "Int16", "i1": "Int8",
                "u8": "UInt64", "u4": "UInt32", "u2": "UInt16", "u1": "UInt8"}
+_NUMPY_DTYPES = {v: np.dtype("<" + k) for k, v in _VTK_DTYPES.items()}
+_RAW = b'<AppendedData encoding="raw">'
 
 
 class _Arrays:
-    """The file as a list of byte chunks: XML text, and each array inline as base64."""
+    """The file as XML text, each array referring by offset to its bytes in the appended block."""
 
-    def __init__(self):
-        self.chunks: list[bytes] = []
+    def __init__(self, kind: str):
+        self.kind = kind
+        self.chunks: list[bytes] = [
+            (f'<?xml version="1.0"?>\n<VTKFile type="{kind}" version="1.0" byte_order="LittleEndian" '
+             f'header_type="UInt64">\n<{kind}>\n').encode("utf-8")]
+        self.blocks: list[np.ndarray] = []
+        self.offset = 0
 
     def text(self, xml: str) -> None:
         self.chunks.append(xml.encode("utf-8"))
@@ -44,14 +51,18 @@ class _Arrays:
         attrs = f'type="{_VTK_DTYPES[key]}"' + (f' Name="{name}"' if name else "")
         attrs += f' NumberOfComponents="{components}"' if components > 1 else ""
         attrs += f' NumberOfTuples="{len(a)}"' if tuples else ""
-        self.text(f'<DataArray {attrs} format="binary">')
-        # header and data in one encoding, as VTK writes them
-        self.chunks.append(base64.b64encode(np.uint64(a.nbytes).tobytes() + memoryview(a).cast("B")))
-        self.text("</DataArray>\n")
+        self.text(f'<DataArray {attrs} format="appended" offset="{self.offset}"/>\n')
+        self.blocks.append(a)
+        self.offset += 8 + a.nbytes
 
     def write(self, path: Path) -> None:
         with open(path, "wb") as f:
             f.writelines(self.chunks)
+            f.write(f"</{self.kind}>\n".encode("utf-8") + _RAW + b"\n_")
+            for a in self.blocks:  # straight from the arrays' memory: no joined copy
+                f.write(np.uint64(a.nbytes).tobytes())
+                f.write(memoryview(a).cast("B"))
+            f.write(b"\n</AppendedData>\n</VTKFile>\n")
 
 
 def _field_data(out: _Arrays, texts: dict) -> None:
@@ -70,9 +81,9 @@ def _data(out: _Arrays, tag: str, arrays: dict) -> None:
     out.text(f"</{tag}>\n")
 
 
-def _head(kind: str) -> str:
-    return (f'<?xml version="1.0"?>\n<VTKFile type="{kind}" version="1.0" byte_order="LittleEndian" '
-            f'header_type="UInt64">\n<{kind}>\n')
+def _index_type(largest: int):
+    # VTK reads 32-bit connectivity and offsets everywhere; half the bytes of 64-bit ones
+    return np.int32 if largest < 2**31 - 1 else np.int64
 
 
 def write_grid(path, points: np.ndarray, cells: np.ndarray, cell_type: str, *, point_data: dict | None = None,
@@ -88,21 +99,21 @@ def write_grid(path, points: np.ndarray, cells: np.ndarray, cell_type: str, *, p
     point_data, cell_data : dict of str to ndarray (N, ...) / (M, ...)
     field_data : dict of str to JSON-serialisable values, stored as UTF-8 bytes
     """
-    cells = np.asarray(cells, np.int64)
     k = NODES_PER_CELL[cell_type]
-    out = _Arrays()
-    out.text(_head("UnstructuredGrid"))
+    cells = np.asarray(cells)
+    index = _index_type(max(len(points), cells.size))
+    out = _Arrays("UnstructuredGrid")
     _field_data(out, field_data or {})
     out.text(f'<Piece NumberOfPoints="{len(points)}" NumberOfCells="{len(cells)}">\n<Points>\n')
     out.array("Points", np.asarray(points, np.float64))
     out.text("</Points>\n<Cells>\n")
-    out.array("connectivity", cells.reshape(-1))
-    out.array("offsets", np.arange(1, len(cells) + 1, dtype=np.int64) * k)
+    out.array("connectivity", cells.reshape(-1).astype(index, copy=False))
+    out.array("offsets", np.arange(1, len(cells) + 1, dtype=index) * index(k))
     out.array("types", np.full(len(cells), VTK_TYPES[cell_type], np.uint8))
     out.text("</Cells>\n")
     _data(out, "PointData", point_data or {})
     _data(out, "CellData", cell_data or {})
-    out.text("</Piece>\n</UnstructuredGrid>\n</VTKFile>\n")
+    out.text("</Piece>\n")
     out.write(Path(path))
 
 
@@ -117,16 +128,18 @@ def write_polydata(path, points: np.ndarray, *, lines: list | None = None, trian
     n = len(points)
     sections = {}
     if vertices:
-        sections["Verts"] = (np.arange(n, dtype=np.int64), np.arange(1, n + 1, dtype=np.int64))
+        index = _index_type(n + 1)
+        sections["Verts"] = (np.arange(n, dtype=index), np.arange(1, n + 1, dtype=index))
     if lines:
-        sections["Lines"] = (np.concatenate(lines).astype(np.int64),
-                             np.cumsum([len(line) for line in lines]).astype(np.int64))
+        connectivity = np.concatenate(lines)
+        index = _index_type(max(n, connectivity.size))
+        sections["Lines"] = (connectivity.astype(index), np.cumsum([len(line) for line in lines]).astype(index))
     if triangles is not None and len(triangles):
-        tri = np.asarray(triangles, np.int64)
-        sections["Polys"] = (tri.reshape(-1), np.arange(1, len(tri) + 1, dtype=np.int64) * 3)
+        tri = np.asarray(triangles)
+        index = _index_type(max(n, tri.size))
+        sections["Polys"] = (tri.reshape(-1).astype(index), np.arange(1, len(tri) + 1, dtype=index) * index(3))
     counts = {name: len(sections[name][1]) if name in sections else 0 for name in ("Verts", "Lines", "Polys")}
-    out = _Arrays()
-    out.text(_head("PolyData"))
+    out = _Arrays("PolyData")
     _field_data(out, field_data or {})
     out.text(f'<Piece NumberOfPoints="{n}" NumberOfVerts="{counts["Verts"]}" NumberOfLines="{counts["Lines"]}" '
              f'NumberOfStrips="0" NumberOfPolys="{counts["Polys"]}">\n')
@@ -140,5 +153,76 @@ def write_polydata(path, points: np.ndarray, *, lines: list | None = None, trian
         out.array("connectivity", connectivity)
         out.array("offsets", offsets)
         out.text(f"</{name}>\n")
-    out.text("</Piece>\n</PolyData>\n</VTKFile>\n")
+    out.text("</Piece>\n")
     out.write(Path(path))
+
+
+class NotOurLayout(ValueError):
+    """The file is VTK XML, but not the raw appended layout :func:`write_grid` writes."""
+
+
+def read_grid(path) -> dict:
+    """An unstructured grid written by :func:`write_grid`, its arrays mapped from the file.
+
+    Returns
+    -------
+    dict
+        ``points`` (N, 3), ``cells`` (M, k), ``cell_type`` (meshio's name), ``point_data`` and
+        ``cell_data`` (dict of str to ndarray), ``field_data`` (dict of str to the decoded JSON).
+        The arrays are views of one buffer holding the file (writable; no file stays open).
+
+    Raises
+    ------
+    NotOurLayout
+        The file holds no raw appended block, mixes cell types, or is not an unstructured grid
+        (read it with meshio or pyvista instead).
+    ValueError
+        The file is cut short or its XML is damaged.
+    """
+    with open(path, "rb") as f:
+        size = f.seek(0, 2)
+        if size == 0:
+            raise ValueError("the file is empty")
+        f.seek(0)
+        buf = bytearray(size)
+        if f.readinto(buf) != size:
+            raise ValueError("the file changed while it was read")
+    start = buf.find(_RAW)
+    if start < 0:
+        raise NotOurLayout("no raw appended data block")
+    underscore = buf.find(b"_", start)
+    if underscore < 0:
+        raise ValueError("the appended data block is cut short")
+    try:
+        root = ET.fromstring(bytes(buf[:start]) + b"</VTKFile>")
+    except ET.ParseError as err:
+        raise ValueError(f"its XML header is damaged ({err})") from None
+    piece = root.find("UnstructuredGrid/Piece")
+    if root.get("type") != "UnstructuredGrid" or piece is None or root.get("header_type") != "UInt64":
+        raise NotOurLayout("not an unstructured grid with 64-bit headers")
+    data = memoryview(buf)[underscore + 1:]
+
+    def values(element) -> np.ndarray:
+        offset = int(element.get("offset"))
+        (nbytes,) = np.frombuffer(data, "<u8", 1, offset)
+        dtype = _NUMPY_DTYPES[element.get("type")]
+        if offset + 8 + int(nbytes) > len(data):
+            raise ValueError(f"array {element.get('Name')} runs past the end of the file")
+        a = np.frombuffer(data, dtype, int(nbytes) // dtype.itemsize, offset + 8)
+        components = int(element.get("NumberOfComponents", 1))
+        return a.reshape(-1, components) if components > 1 else a
+
+    def group(tag: str) -> dict:
+        node = piece.find(tag)
+        return {} if node is None else {e.get("Name"): values(e) for e in node.findall("DataArray")}
+
+    cells = {e.get("Name"): values(e) for e in piece.findall("Cells/DataArray")}
+    types = np.unique(cells["types"])
+    names = {v: k for k, v in VTK_TYPES.items()}
+    if len(types) != 1 or int(types[0]) not in names:
+        raise NotOurLayout("more than one cell type, or one fibers does not write")
+    cell_type = names[int(types[0])]
+    fields = {e.get("Name"): json.loads(bytes(values(e))) for e in root.findall("UnstructuredGrid/FieldData/DataArray")}
+    return {"points": values(piece.find("Points/DataArray")),
+            "cells": cells["connectivity"].reshape(-1, NODES_PER_CELL[cell_type]), "cell_type": cell_type,
+            "point_data": group("PointData"), "cell_data": group("CellData"), "field_data": fields}
