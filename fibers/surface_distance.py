@@ -17,7 +17,7 @@ from scipy.spatial import cKDTree
 
 
 def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.ndarray, *,
-                        candidates: int = 6, block: int = 200_000) -> np.ndarray:
+                        candidates: int = 6, block: int = 10_000) -> np.ndarray:
     """Distance (K,) mm from each point to the nearest of the triangles.
 
     Parameters
@@ -29,7 +29,9 @@ def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.
     candidates : int
         Triangles tried per point (the nearest by centroid).
     block : int
-        Points handled at once, to bound the memory.
+        Points handled at once. Small blocks keep the (3, block, candidates) temporaries in
+        cache and in memory the allocator reuses: at 105k points, 10,000 at a time took 0.75
+        of the time of one block of all (the demo ventricle at 547k tetrahedra).
 
     Returns
     -------
@@ -38,7 +40,9 @@ def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.
     points = np.asarray(points, float).reshape(-1, 3)
     tri = np.asarray(vertices, float)[np.asarray(triangles)]
     k = int(min(candidates, len(tri)))
-    tree = cKDTree(tri.mean(axis=1))
+    # leaves of 32 centroids: a shallower tree, about 0.8 of the query time of scipy's 16 for
+    # points a wall's thickness away (same neighbours: the k nearest are exact either way)
+    tree = cKDTree(tri.mean(axis=1), leafsize=32)
     corners = np.ascontiguousarray(tri.transpose(1, 2, 0))   # (3 corners, 3 components, T)
     out = np.empty(len(points))
     for start in range(0, len(points), block):
