@@ -76,15 +76,26 @@ def write_all(folder: Path, result) -> None:
     Uncompressed binary throughout: zlib compression tripled the writing time for files that
     shrink by less than half.
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     from fibers.io.pools import write_pools
 
     fem = fem_mesh(result)
+    # Writing is mostly the kernel copying bytes into new file pages, which releases the GIL:
+    # mesh.vtu and mesh.msh go on a second thread while the rest is written here, 0.5-0.6 of
+    # the time in sequence at 547k tetrahedra (about 230 MB in all).
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        job = pool.submit(_write_vtu_and_msh, folder, fem)
+        write_xdmf(folder, fem)
+        write_surfaces(folder / "surfaces.vtp", result)
+        write_pools(folder, result.pools)
+        write_segments_csv(folder / "segments.csv", result)
+        job.result()
+
+
+def _write_vtu_and_msh(folder: Path, fem: "FemMesh") -> None:
     write_vtu(folder / "mesh.vtu", fem)
-    write_xdmf(folder, fem)
     write_msh(folder / "mesh.msh", fem)
-    write_surfaces(folder / "surfaces.vtp", result)
-    write_pools(folder, result.pools)
-    write_segments_csv(folder / "segments.csv", result)
 
 
 def write_segments_csv(path: Path, result) -> None:
