@@ -135,7 +135,7 @@ def septal_weight(circumferential) -> np.ndarray:
     return 0.5 * (1.0 + np.cos(np.radians(np.asarray(circumferential, float))))
 
 
-def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False) -> dict:
+def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False, angles: bool = True) -> dict:
     """The fiber rule at any points: triad and angles from coordinates and frames there.
 
     The one place the rule is applied: the nodes and elements (`assign`), the pools and any
@@ -155,13 +155,15 @@ def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False) -> d
     septal : bool
         Whether ``circumferential`` is measured from the septal bisector (landmarks given);
         otherwise septal offsets are not applied.
+    angles : bool
+        Also measure the angles of the triad (False: the triad alone, as the elements need).
 
     Returns
     -------
     dict of str to ndarray
         ``fiber``, ``sheet``, ``sheet_normal`` (K, 3), a right-handed orthonormal triad;
-        ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``, ``sheet_angle`` (K,)
-        degrees; ``dispersion`` (K,).
+        with ``angles``, ``helix_angle``, ``helix_angle_sax``, ``imbrication_angle``,
+        ``sheet_angle`` (K,) degrees and ``dispersion`` (K,).
     """
     need = ["points", "e_rad", "e_long", "e_circ",
             "thickness_fraction" if law.depth == "thickness" else "transmural"]
@@ -184,9 +186,12 @@ def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False) -> d
     a = helix_angle(law, depth, apicobasal=position, septal_weight=weight)
     b = sheet_angle(law, depth, apicobasal=position, septal_weight=weight)
     i = imbrication_angle(law, depth)
-    c_sax, l_sax = short_axis_frame(n, fields["points"], axis, fallback=e_circ)
+    if angles or law.helix_frame == "short_axis":
+        c_sax, l_sax = short_axis_frame(n, fields["points"], axis, fallback=e_circ)
     c, l = (c_sax, l_sax) if law.helix_frame == "short_axis" else (e_circ, e_long)
     fiber, sheet, normal = triad_from_angles(n, c, l, a, i, b)
+    if not angles:
+        return {"fiber": fiber, "sheet": sheet, "sheet_normal": normal}
     dot = lambda u, v: np.einsum("ij,ij->i", u, v)  # noqa: E731
     return {"fiber": fiber, "sheet": sheet, "sheet_normal": normal,
             "helix_angle": np.degrees(np.arctan2(dot(fiber, e_long), dot(fiber, e_circ))),
@@ -294,7 +299,7 @@ def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = Fa
                       "right-ventricular insertion landmarks: the septal offsets are not applied; add [landmarks]",
                       stacklevel=2)
     at_nodes = point_triad(nodes, law, axis=mesh.axis, septal=septal)
-    at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal)
+    at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal, angles=False)
     return Architecture(**{k: at_nodes[k] for k in TRIAD_FIELDS},
                         cell_fiber=at_cells["fiber"], cell_sheet=at_cells["sheet"],
                         cell_sheet_normal=at_cells["sheet_normal"])

@@ -359,7 +359,8 @@ def with_cell_fields(quad: QuadraticMesh, coords, law, septum) -> QuadraticMesh:
              "e_circ": mean(coords.cell_e_circ), "transmural": mean(coords.cell_transmural),
              "thickness_fraction": mean(coords.cell_thickness_fraction),
              "apicobasal": mean(coords.cell_apicobasal), "circumferential": circ}
-    triad = architecture.point_triad(cells, law, axis=quad.linear.axis, septal=septum is not None)
+    triad = architecture.point_triad(cells, law, axis=quad.linear.axis, septal=septum is not None,
+                                     angles=False)
     fiber, sheet, normal = triad["fiber"], triad["sheet"], triad["sheet_normal"]
     aha = segments.label_points(centroid, quad.linear, septum)
     return replace(quad, cell_data={"aha_segment": aha.astype(np.int32), "fiber_cell": fiber,
