@@ -290,18 +290,12 @@ def match_face_tags(faces, tri, n_points):
     RuntimeError
         A boundary face is not one of ours (gmsh changed the boundary).
     """
-    def key(f):
-        s = np.sort(f, axis=1).astype(np.int64)
-        return (s[:, 0] * n_points + s[:, 1]) * n_points + s[:, 2]
-    ours = np.concatenate([key(f) for f in tri.values()])
+    ours = np.concatenate(list(tri.values()))
     ours_tag = np.concatenate([np.full(len(f), t) for t, f in tri.items()])
-    order = np.argsort(ours)
-    k = key(faces)
-    pos = np.clip(np.searchsorted(ours[order], k), 0, len(ours) - 1)
-    found = ours[order][pos] == k
-    if not found.all():
-        raise RuntimeError(f"gmsh changed {np.count_nonzero(~found)} boundary faces; the mesh is not bounded by the fitted surfaces")
-    return ours_tag[order][pos]
+    row = meshtools.match_triangles(faces, ours, n_points)
+    if np.any(row < 0):
+        raise RuntimeError(f"gmsh changed {np.count_nonzero(row < 0)} boundary faces; the mesh is not bounded by the fitted surfaces")
+    return ours_tag[row]
 
 
 def volumes_mm3(wall: WallMesh) -> tuple[float, float]:

@@ -39,6 +39,24 @@ def face_keys(triangles: np.ndarray, n_points: int) -> np.ndarray:
     return np.unique(s, axis=0, return_inverse=True)[1].ravel().astype(np.int64)
 
 
+def match_triangles(query: np.ndarray, reference: np.ndarray, n_points: int) -> np.ndarray:
+    """Row (Q,) of ``reference`` (T, 3) with the same node set as each row of ``query`` (Q, 3),
+    -1 where there is none. Node order within a row does not matter.
+
+    Both sets are keyed in one call of `face_keys`, so its rank keys (beyond 2^21 nodes) stay
+    comparable between them.
+    """
+    query = np.asarray(query).reshape(-1, 3)
+    reference = np.asarray(reference).reshape(-1, 3)
+    if len(reference) == 0:
+        return np.full(len(query), -1, np.int64)
+    keys = face_keys(np.concatenate([reference, query]), n_points)
+    ref, wanted = keys[:len(reference)], keys[len(reference):]
+    order = np.argsort(ref)
+    hit = order[np.minimum(np.searchsorted(ref, wanted, sorter=order), len(ref) - 1)]
+    return np.where(ref[hit] == wanted, hit, -1)
+
+
 def boundary_faces(tets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Boundary triangles of a positively oriented tetrahedral mesh.
 

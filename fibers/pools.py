@@ -310,29 +310,8 @@ def _owners(mesh: WallMesh) -> np.ndarray:
     on_boundary[mesh.faces] = True
     candidates = np.flatnonzero(on_boundary[mesh.tets].sum(axis=1) >= 3)
     local = mesh.tets[candidates][:, [[1, 2, 3], [0, 2, 3], [0, 1, 3], [0, 1, 2]]].reshape(-1, 3)
-    all_faces = np.sort(local, axis=1)
-    key_mesh = np.sort(mesh.faces, axis=1)
-    owner = _owning_rows(all_faces, key_mesh, n)
+    owner = meshtools.match_triangles(mesh.faces, local, n)
     return np.where(owner >= 0, candidates[owner // 4], -1)
-
-
-def _owning_rows(all_faces: np.ndarray, key_mesh: np.ndarray, n: int) -> np.ndarray:
-    """Row of ``all_faces`` (sorted triples) equal to each row of ``key_mesh`` (-1 if none)."""
-    if len(all_faces) == 0:
-        return np.full(len(key_mesh), -1, np.int64)
-    if n < 2**21:
-        # One int64 per sorted triple, then a binary search, instead of a row-wise unique.
-        code = lambda f: (f[:, 0] * n + f[:, 1]) * n + f[:, 2]  # noqa: E731
-        codes = code(all_faces)
-        order = np.argsort(codes)
-        pos = np.minimum(np.searchsorted(codes, code(key_mesh), sorter=order), len(codes) - 1)
-        hit = order[pos]
-        return np.where(codes[hit] == code(key_mesh), hit, -1)
-    _, inverse = np.unique(np.vstack([all_faces, key_mesh]), axis=0, return_inverse=True)
-    inverse = inverse.ravel()
-    lookup = np.full(inverse.max() + 1, -1, np.int64)
-    lookup[inverse[:len(all_faces)]] = np.arange(len(all_faces))
-    return lookup[inverse[len(all_faces):]]
 
 
 def default_box(mesh: WallMesh, margin: float) -> Box:

@@ -69,3 +69,17 @@ def test_empty_and_far_queries(small):
     assert tet.shape == (0,) and bary.shape == (0, 4)
     tet, bary = loc(np.array([[1e4, 0, 0], [np.nan, 0, 0]]))
     assert tet.tolist() == [-1, -1] and not bary.any()
+
+
+@pytest.mark.parametrize("n_points", [50, 2**22])  # integer keys, and the rank keys beyond 2^21 nodes
+def test_triangles_match_in_any_vertex_order(n_points):
+    # against a plain dictionary of node sets (frozensets), written independently of the keys
+    from fibers.meshtools import match_triangles
+
+    rng = np.random.default_rng(5)
+    reference = np.array([rng.choice(n_points, 3, replace=False) for _ in range(40)])
+    query = np.concatenate([reference[::3][:, ::-1], [rng.choice(n_points, 3, replace=False) for _ in range(5)]])
+    rows = match_triangles(query, reference, n_points)
+    where = {frozenset(r): i for i, r in enumerate(reference.tolist())}
+    assert rows.tolist() == [where.get(frozenset(q), -1) for q in query.tolist()]
+    assert match_triangles(query, reference[:0], n_points).tolist() == [-1] * len(query)
