@@ -14,6 +14,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from fibers.errors import InputError
+from fibers.meshtools import index_dtype
 
 log = logging.getLogger(__name__)
 
@@ -101,8 +102,7 @@ def stiffness(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | Non
         off[e] += g[i, 1] * g[j, 1]
         off[e] += g[i, 2] * g[j, 2]
     off *= vol
-    index_type = np.int32 if n < 2**31 - 1 else np.int64
-    t = np.ascontiguousarray(np.asarray(tets, dtype=index_type).T)
+    t = np.ascontiguousarray(np.asarray(tets, dtype=index_dtype(n)).T)
     a, b = t[first].ravel(), t[second].ravel()
     low, high = np.minimum(a, b), np.maximum(a, b)
     w = off.ravel()

@@ -10,6 +10,12 @@ _LOCAL_FACES = np.array([[1, 2, 3], [0, 3, 2], [0, 1, 3], [0, 2, 1]])
 LOCAL_FACES = _LOCAL_FACES  # face j is the one opposite vertex j
 
 
+def index_dtype(largest: int):
+    """int32 for node or cell numbers up to ``largest``, else int64: every reader of our files
+    (VTK, XDMF, scipy's sparse matrices) takes 32-bit ones, at half the bytes."""
+    return np.int32 if largest < 2**31 - 1 else np.int64
+
+
 def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
     """Signed volumes (M,) in mm^3; positive when (b-a, c-a, d-a) is right-handed."""
     from fibers.vectors import cross

@@ -16,6 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
+from fibers.meshtools import index_dtype
+
 # meshio's cell names (used across fibers) and VTK's cell type numbers
 VTK_TYPES = {"vertex": 1, "line": 3, "triangle": 5, "tetra": 10, "line3": 21, "triangle6": 22, "tetra10": 24}
 NODES_PER_CELL = {"vertex": 1, "line": 2, "triangle": 3, "tetra": 4, "line3": 3, "triangle6": 6, "tetra10": 10}
@@ -81,11 +83,6 @@ def _data(out: _Arrays, tag: str, arrays: dict) -> None:
     out.text(f"</{tag}>\n")
 
 
-def _index_type(largest: int):
-    # VTK reads 32-bit connectivity and offsets everywhere; half the bytes of 64-bit ones
-    return np.int32 if largest < 2**31 - 1 else np.int64
-
-
 def write_grid(path, points: np.ndarray, cells: np.ndarray, cell_type: str, *, point_data: dict | None = None,
                cell_data: dict | None = None, field_data: dict | None = None) -> None:
     """An unstructured grid of one cell type (``.vtu``).
@@ -101,7 +98,7 @@ def write_grid(path, points: np.ndarray, cells: np.ndarray, cell_type: str, *, p
     """
     k = NODES_PER_CELL[cell_type]
     cells = np.asarray(cells)
-    index = _index_type(max(len(points), cells.size))
+    index = index_dtype(max(len(points), cells.size))
     out = _Arrays("UnstructuredGrid")
     _field_data(out, field_data or {})
     out.text(f'<Piece NumberOfPoints="{len(points)}" NumberOfCells="{len(cells)}">\n<Points>\n')
@@ -128,15 +125,15 @@ def write_polydata(path, points: np.ndarray, *, lines: list | None = None, trian
     n = len(points)
     sections = {}
     if vertices:
-        index = _index_type(n + 1)
+        index = index_dtype(n + 1)
         sections["Verts"] = (np.arange(n, dtype=index), np.arange(1, n + 1, dtype=index))
     if lines:
         connectivity = np.concatenate(lines)
-        index = _index_type(max(n, connectivity.size))
+        index = index_dtype(max(n, connectivity.size))
         sections["Lines"] = (connectivity.astype(index), np.cumsum([len(line) for line in lines]).astype(index))
     if triangles is not None and len(triangles):
         tri = np.asarray(triangles)
-        index = _index_type(max(n, tri.size))
+        index = index_dtype(max(n, tri.size))
         sections["Polys"] = (tri.reshape(-1).astype(index), np.arange(1, len(tri) + 1, dtype=index) * index(3))
     counts = {name: len(sections[name][1]) if name in sections else 0 for name in ("Verts", "Lines", "Polys")}
     out = _Arrays("PolyData")
