@@ -171,7 +171,7 @@ def read_grid(path) -> dict:
     Raises
     ------
     NotOurLayout
-        The file holds no raw appended block, mixes cell types, or is not an unstructured grid
+        The file holds no raw appended block, no cells or mixed cell types, or is not an unstructured grid
         (read it with meshio or pyvista instead).
     ValueError
         The file is cut short or its XML is damaged.
@@ -214,10 +214,10 @@ def read_grid(path) -> dict:
         return {} if node is None else {e.get("Name"): values(e) for e in node.findall("DataArray")}
 
     cells = {e.get("Name"): values(e) for e in piece.findall("Cells/DataArray")}
-    types = np.unique(cells["types"])
+    types = cells["types"]
     names = {v: k for k, v in VTK_TYPES.items()}
-    if len(types) != 1 or int(types[0]) not in names:
-        raise NotOurLayout("more than one cell type, or one fibers does not write")
+    if len(types) == 0 or types.min() != types.max() or int(types[0]) not in names:
+        raise NotOurLayout("no cells, more than one cell type, or one fibers does not write")
     cell_type = names[int(types[0])]
     fields = {e.get("Name"): json.loads(bytes(values(e))) for e in root.findall("UnstructuredGrid/FieldData/DataArray")}
     return {"points": values(piece.find("Points/DataArray")),
