@@ -195,7 +195,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
     depth = (mesh.axis.base_centre - points) @ axis_dir
     position = even_along_axis(apicobasal, depth, apex)
 
-    circumferential = _angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
+    circumferential = angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
 
     g_t_cell = fem.cell_gradient(points, tets, transmural, grads=grads)
     g_a_cell = fem.cell_gradient(points, tets, apicobasal, grads=grads)
@@ -220,7 +220,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordi
         cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
         cell_transmural=transmural[tets].mean(axis=1),
         cell_apicobasal=position[tets].mean(axis=1),
-        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
+        cell_circumferential=angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
         frame_quality=frame_quality(points, mesh.axis),
         cell_frame_quality=frame_quality(centroids, mesh.axis))
 
@@ -353,7 +353,7 @@ def apex_patch(mesh: WallMesh) -> np.ndarray:
     return np.sort(epi[keep])
 
 
-def _angle_about_axis(points, centre, axis_dir, zero):
+def angle_about_axis(points, centre, axis_dir, zero):
     """Angle (K,) in degrees in [-180, 180), right-handed about ``axis_dir``, 0 at ``zero``."""
     second = cross(axis_dir, zero)
     rel = np.asarray(points, float) - centre

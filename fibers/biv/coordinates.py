@@ -72,7 +72,7 @@ import numpy as np
 from fibers import fem
 from fibers.architecture import Architecture, short_axis_frame
 from fibers.biv.mesh import RV_ENDO, BiVMesh
-from fibers.coordinates import CardiacCoordinates, apex_patch, even_along_axis, frame_quality
+from fibers.coordinates import CardiacCoordinates, angle_about_axis, apex_patch, even_along_axis, frame_quality
 from fibers.errors import InputError
 from fibers.types import BASE, ENDO, EPI
 from fibers.vectors import cross
@@ -195,11 +195,11 @@ def compute(mesh: BiVMesh, law: BiVLaw = BiVLaw(), *, zero_direction=None, tol: 
     centroids = mesh.cell_centroids
     coords = CardiacCoordinates(
         transmural=phi_epi, apicobasal=position,
-        circumferential=_angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero),
+        circumferential=angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero),
         e_rad=nodal["e_rad"], e_long=nodal["e_long"], e_circ=nodal["e_circ"],
         cell_e_rad=cellwise["e_rad"], cell_e_long=cellwise["e_long"], cell_e_circ=cellwise["e_circ"],
         cell_transmural=cell_fields[2], cell_apicobasal=position[tets].mean(axis=1),
-        cell_circumferential=_angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
+        cell_circumferential=angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
         # both ventricles: the depth the laws use is the Laplace one (phi_epi); the LV's
         # surface-distance fraction has no meaning across the septum
         thickness_fraction=phi_epi, cell_thickness_fraction=cell_fields[2],
@@ -460,10 +460,3 @@ def _any_normal(e):
     pick = np.where((np.abs(e[:, 0]) < 0.9)[:, None], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0])
     v = cross(e, pick)
     return v / np.linalg.norm(v, axis=1)[:, None]
-
-
-def _angle_about_axis(points, centre, axis_dir, zero):
-    second = cross(axis_dir, zero)
-    rel = np.asarray(points, float) - centre
-    deg = np.degrees(np.arctan2(rel @ second, rel @ zero))
-    return np.where(deg >= 180.0, deg - 360.0, deg)

@@ -216,13 +216,12 @@ def _free_row(right: RightSurfaces, z_sept: float, z_free: float, u: np.ndarray,
 def _drop_shared(septal: np.ndarray, free: np.ndarray):
     """Remove the triangles both sheets have (all three nodes shared: the cavity pinched to no
     width there) from both; the two sheets then join along that triangle's edges."""
-    def key(f):
-        return [tuple(r) for r in np.sort(f, axis=1)]
-    both = set(key(septal)) & set(key(free))
-    if not both:
+    n = int(max(septal.max(initial=0), free.max(initial=0))) + 1
+    in_free = meshtools.match_triangles(septal, free, n) >= 0
+    if not in_free.any():
         return septal, free
-    keep = lambda f: np.array([k not in both for k in key(f)])  # noqa: E731  (a few rows near the tips)
-    return septal[keep(septal)], free[keep(free)]
+    in_septal = meshtools.match_triangles(free, septal, n) >= 0
+    return septal[~in_free], free[~in_septal]
 
 
 def _stitch_rows(index_rows, u_rows) -> np.ndarray:
