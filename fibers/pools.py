@@ -47,7 +47,7 @@ from fibers.config import Box, FiberLaw, PoolSettings
 from fibers.errors import InputError
 from fibers.locate import Locator
 from fibers.types import BASE, ENDO, EPI, WallMesh
-from fibers.vectors import cross
+from fibers.vectors import cross, unit_rows
 
 log = logging.getLogger(__name__)
 
@@ -123,10 +123,6 @@ def _pick(weights: np.ndarray, unit: np.ndarray) -> np.ndarray:
 
 # -- fields at points ------------------------------------------------------------------------
 
-def _unit_rows(v: np.ndarray) -> np.ndarray:
-    return v / np.maximum(np.linalg.norm(v, axis=1), 1e-300)[:, None]
-
-
 def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mesh: WallMesh,
                  coords, law: FiberLaw, septum) -> dict[str, np.ndarray]:
     """All wall fields at points, interpolated from the nodes of their element or face.
@@ -166,9 +162,9 @@ def point_fields(points: np.ndarray, nodes: np.ndarray, weights: np.ndarray, mes
     phase = interp(np.exp(1j * np.radians(coords.circumferential)))
     circ = np.degrees(np.angle(phase))
     circ = np.where(circ >= 180.0, circ - 360.0, circ)
-    e_rad = _unit_rows(interp(coords.e_rad))
+    e_rad = unit_rows(interp(coords.e_rad))
     e_long = interp(coords.e_long)
-    e_long = _unit_rows(e_long - np.einsum("ij,ij->i", e_long, e_rad)[:, None] * e_rad)
+    e_long = unit_rows(e_long - np.einsum("ij,ij->i", e_long, e_rad)[:, None] * e_rad)
     e_circ = cross(e_long, e_rad)
     out = {"transmural": transmural, "apicobasal": apicobasal, "circumferential": circ,
            "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ}

@@ -20,3 +20,8 @@ def cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     np.subtract(a2 * b0, a0 * b2, out=out[..., 1])
     np.subtract(a0 * b1, a1 * b0, out=out[..., 2])
     return out
+
+
+def unit_rows(v: np.ndarray) -> np.ndarray:
+    """Rows of ``v`` (K, 3) scaled to unit length; zero rows stay zero."""
+    return v / np.maximum(np.linalg.norm(v, axis=1), 1e-300)[:, None]

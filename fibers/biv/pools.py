@@ -25,7 +25,7 @@ from fibers.biv.mesh import RV_ENDO, RV_FREE_WALL, BiVMesh
 from fibers.biv.regions import rv_thirds
 from fibers.config import Box
 from fibers.types import ENDO, EPI
-from fibers.vectors import cross
+from fibers.vectors import cross, unit_rows
 
 RV_POOLS = ("rv_cavity", "rv_endo")
 
@@ -82,9 +82,9 @@ def _biv_fields(arrays, mesh, arch, fields, rule=None):
         arrays["dispersion"] = np.zeros(len(arrays["points"]))
         _regions(arrays, mesh)
         return
-    fiber = _unit(_interp(arrays, mesh, arch.fiber))
+    fiber = unit_rows(_interp(arrays, mesh, arch.fiber))
     sheet = _interp(arrays, mesh, arch.sheet)
-    sheet = _unit(sheet - np.einsum("ij,ij->i", sheet, fiber)[:, None] * fiber)
+    sheet = unit_rows(sheet - np.einsum("ij,ij->i", sheet, fiber)[:, None] * fiber)
     arrays["fiber"], arrays["sheet"] = fiber, sheet
     arrays["sheet_normal"] = cross(fiber, sheet)
     arrays["helix_angle"] = _interp(arrays, mesh, arch.helix_angle)
@@ -100,10 +100,6 @@ def _regions(arrays, mesh):
     arrays["region"] = region
     arrays["rv_region"] = rv_thirds(arrays["points"], mesh, region == RV_FREE_WALL)
     arrays["aha_segment"] = np.where(region == RV_FREE_WALL, 0, arrays["aha_segment"]).astype(np.int8)
-
-
-def _unit(v):
-    return v / np.maximum(np.linalg.norm(v, axis=1), 1e-300)[:, None]
 
 
 def _rv_cavity_points(mesh, settings, rng):
