@@ -184,17 +184,26 @@ def _stitch(ia, aa, ib, ab) -> np.ndarray:
     Walking once around, each step advances along the ring whose next point comes first in
     angle: an advance on ring A gives (A_i, A_i+1, B_j), one on ring B gives (A_i, B_j+1, B_j).
     """
-    na, nb = len(ia), len(ib)
-    next_a = np.append(aa[1:], aa[0] + 2 * np.pi)
-    next_b = np.append(ab[1:], ab[0] + 2 * np.pi)
-    events = np.concatenate([next_a, next_b])
-    is_a = np.concatenate([np.ones(na, bool), np.zeros(nb, bool)])
-    order = np.argsort(events, kind="stable")
-    is_a = is_a[order]
+    return stitch_steps(ia, ib, np.append(aa[1:], aa[0] + 2 * np.pi), np.append(ab[1:], ab[0] + 2 * np.pi),
+                        closed=True)
+
+
+def stitch_steps(ia, ib, next_a, next_b, *, closed: bool) -> np.ndarray:
+    """Triangles (T, 3) of one walk along two rows of node indices ``ia``, ``ib``.
+
+    ``next_a``, ``next_b`` are the positions (an angle, a fraction) at which each row's next
+    point is reached; the walk takes them in rising order. An advance on A gives
+    (A_i, A_i+1, B_j), one on B gives (A_i, B_j+1, B_j). ``closed`` rows wrap around to their
+    first point; open ones stop at their last. Degenerate triangles are left out.
+    """
+    is_a = np.concatenate([np.ones(len(next_a), bool), np.zeros(len(next_b), bool)])
+    is_a = is_a[np.argsort(np.concatenate([next_a, next_b]), kind="stable")]
     i = np.concatenate([[0], np.cumsum(is_a)[:-1]])      # A-advances before each step
     j = np.concatenate([[0], np.cumsum(~is_a)[:-1]])     # B-advances before each step
-    a0, a1 = ia[i % na], ia[(i + 1) % na]
-    b0, b1 = ib[j % nb], ib[(j + 1) % nb]
+    na, nb = len(ia), len(ib)
+    at = (lambda k, n: k % n) if closed else (lambda k, n: np.minimum(k, n - 1))  # noqa: E731
+    a0, a1 = ia[at(i, na)], ia[at(i + 1, na)]
+    b0, b1 = ib[at(j, nb)], ib[at(j + 1, nb)]
     tri = np.where(is_a[:, None], np.column_stack([a0, a1, b0]), np.column_stack([a0, b1, b0]))
     ok = (tri[:, 0] != tri[:, 1]) & (tri[:, 1] != tri[:, 2]) & (tri[:, 0] != tri[:, 2])
     return tri[ok]
@@ -294,7 +303,8 @@ def match_face_tags(faces, tri, n_points):
     ours_tag = np.concatenate([np.full(len(f), t) for t, f in tri.items()])
     row = meshtools.match_triangles(faces, ours, n_points)
     if np.any(row < 0):
-        raise RuntimeError(f"gmsh changed {np.count_nonzero(row < 0)} boundary faces; the mesh is not bounded by the fitted surfaces")
+        raise RuntimeError(f"gmsh changed {np.count_nonzero(row < 0)} boundary faces; the mesh is not bounded by "
+                           "the fitted surfaces")
     return ours_tag[row]
 
 

@@ -28,7 +28,7 @@ from scipy.spatial import cKDTree
 
 from fibers import meshtools
 from fibers.biv.surfaces import RightSurfaces
-from fibers.mesh import ROW, fill_volume, match_face_tags, stitch_rings, surface_rings, tet_quality
+from fibers.mesh import ROW, fill_volume, match_face_tags, stitch_rings, stitch_steps, surface_rings, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
 
@@ -230,22 +230,8 @@ def _stitch_rows(index_rows, u_rows) -> np.ndarray:
 
 
 def _stitch_open(ia, ua, ib, ub) -> np.ndarray:
-    """Triangles joining two open rows whose fractions both run from 0 to 1.
-
-    Each step advances along the row whose next point comes first: an advance on A gives
-    (A_i, A_i+1, B_j), one on B gives (A_i, B_j+1, B_j).
-    """
-    events = np.concatenate([ua[1:], ub[1:]])
-    is_a = np.concatenate([np.ones(len(ia) - 1, bool), np.zeros(len(ib) - 1, bool)])
-    order = np.argsort(events, kind="stable")
-    is_a = is_a[order]
-    i = np.concatenate([[0], np.cumsum(is_a)[:-1]])
-    j = np.concatenate([[0], np.cumsum(~is_a)[:-1]])
-    a0, a1 = ia[i], ia[np.minimum(i + 1, len(ia) - 1)]
-    b0, b1 = ib[j], ib[np.minimum(j + 1, len(ib) - 1)]
-    tri = np.where(is_a[:, None], np.column_stack([a0, a1, b0]), np.column_stack([a0, b1, b0]))
-    ok = (tri[:, 0] != tri[:, 1]) & (tri[:, 1] != tri[:, 2]) & (tri[:, 0] != tri[:, 2])
-    return tri[ok]
+    """Triangles joining two open rows whose fractions both run from 0 to 1."""
+    return stitch_steps(ia, ib, ua[1:], ub[1:], closed=False)
 
 
 # -- the base ----------------------------------------------------------------------------------------
