@@ -33,6 +33,7 @@ import hashlib
 import json
 import logging
 import os
+import sys
 import threading
 import time
 from dataclasses import dataclass, field
@@ -47,6 +48,7 @@ log = logging.getLogger("fibers")
 WORKER_ENV = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 RETRIES_AFTER_WORKER_DEATH = 1
 STATUSES = ("ok", "failed", "skipped")
+ESTIMATE_LABELMAP_BYTES = 4 * 2**20  # label maps read for the order of the builds (estimated_tets)
 
 
 @dataclass(frozen=True)
@@ -188,6 +190,90 @@ def _same_parameters(built: dict, case) -> bool:
     if case.slice_thickness is not None and geometry.get("slice_thickness") != case.slice_thickness:
         return False
     return not isinstance(case.frame, int) or built.get("frame") == case.frame
+
+
+# ----------------------------------------------------------------------------- the order of the builds
+
+def estimated_tets(subject: Subject, options: Options) -> float | None:
+    """Roughly how many tetrahedra a subject's build will make; None when it cannot tell cheaply.
+
+    The builds are handed out largest first, so that the last to finish is a small one and no
+    worker idles through a long tail (longest processing time first, Graham 1969). The wall
+    volume comes from the contours (each slice's epicardial minus endocardial area times the
+    slice spacing) or from a label map's myocardial voxels, and the count from the volume as
+    :func:`fibers.budget.estimate_tets` counts it. Label maps over ``ESTIMATE_LABELMAP_BYTES``
+    (4-D cine files take a second or more to decode) are not read: their subjects get the
+    median of the others. A few milliseconds for a usual contours file or 3-D label map.
+    """
+    import warnings
+
+    import numpy as np
+
+    from fibers.budget import estimate_tets
+    from fibers.io.contours import read_contours
+    from fibers.io.labelmap import load_labelmap
+
+    try:
+        case = resolved_case(subject.case, options)
+        if case.contours is not None:
+            volume = contour_wall_volume_mm3(read_contours(case.contours))
+        elif case.labelmap.stat().st_size <= ESTIMATE_LABELMAP_BYTES:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                image = load_labelmap(case.labelmap, frame=case.frame, cavity=case.labels["cavity"])
+            voxels = int(np.count_nonzero(image.labels == case.labels["wall"]))
+            volume = voxels * abs(float(np.linalg.det(image.affine[:3, :3])))
+        else:
+            return None
+    except (OSError, ValueError, KeyError, InputError):  # a broken case: its build says what is wrong
+        return None
+    return float(estimate_tets(volume, case.mesh_size)) if volume > 0 else None
+
+
+def contour_wall_volume_mm3(raw) -> float:
+    """Wall volume (mm^3) of a contour stack: sum over slices of (epi area - endo area) x spacing.
+
+    Each polygon's area is half the norm of its vector area, sum of p_i x p_i+1 (the shoelace
+    formula in 3-D, so a tilted stack needs no projection); the spacing is the median gap of the
+    slice centroids along the mean slice normal. Only good to a few per cent: it orders builds.
+    """
+    import numpy as np
+
+    epi = raw.structure == "epi"
+    endo = raw.structure == "endo"
+    if not epi.any():
+        return 0.0
+    rows = np.flatnonzero(epi | endo)
+    key = raw.slice_id[rows].astype(np.int64) * 2 + epi[rows]
+    order = rows[np.argsort(key, kind="stable")]
+    key = np.sort(key, kind="stable")
+    p = raw.points[order] - raw.points[order].mean(axis=0)
+    start = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
+    nxt = np.arange(1, len(p) + 1)
+    nxt[np.r_[start[1:], len(p)] - 1] = start  # each polygon closes on its first point
+    vector_area = 0.5 * np.add.reduceat(np.cross(p, p[nxt]), start, axis=0)
+    area = np.linalg.norm(vector_area, axis=1)
+    is_epi = key[start] % 2 == 1
+    # the mean normal of the epicardial polygons, whichever way each one runs
+    epi_area = vector_area[is_epi]
+    normal = np.sum(epi_area * np.sign(epi_area @ epi_area[0])[:, None], axis=0)
+    normal /= max(np.linalg.norm(normal), 1e-12)
+    centroid = np.add.reduceat(p, start, axis=0) / np.diff(np.r_[start, len(p)])[:, None]
+    height = np.sort(centroid[is_epi] @ normal)
+    spacing = float(np.median(np.diff(height))) if len(height) > 1 else 0.0
+    wall_area = np.sum(np.where(is_epi, area, -area))
+    return max(float(wall_area) * spacing, 0.0)
+
+
+def build_order(subjects: list[Subject], options: Options) -> list[tuple[Subject, float]]:
+    """Subjects with their estimated tetrahedra, largest first (unknown ones at the median)."""
+    import statistics
+
+    estimates = {s.name: estimated_tets(s, options) for s in subjects}
+    known = [e for e in estimates.values() if e is not None]
+    middle = statistics.median(known) if known else 0.0
+    sized = [(s, middle if estimates[s.name] is None else estimates[s.name]) for s in subjects]
+    return sorted(sized, key=lambda item: -item[1])
 
 
 # ----------------------------------------------------------------------------- one subject (on a worker)
@@ -408,10 +494,10 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
         log.info("cohort: %d to build on %d worker%s%s", len(todo), slots, "" if slots == 1 else "s",
                  f"; dashboard {link}" if link else "")
         by_key = {}
-        for s in todo:
+        for s, size in build_order(todo, options):
             future = client.submit(build_subject, s.name, str(s.case), str(out / s.name), options,
                                    key=f"fibers-build-{s.name}-{os.urandom(4).hex()}", pure=False,
-                                   retries=0)
+                                   retries=0, priority=int(size))
             by_key[future.key] = (s, future)
         pending = {f for _, f in by_key.values()}
         progress.running = min(slots, len(pending))
@@ -450,9 +536,10 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
 
 def _import_drawing() -> None:
     try:
-        from fibers.report.drawing import pyplot
+        with _IMPORTING:
+            from fibers.report.drawing import pyplot
 
-        pyplot()
+            pyplot()
     except Exception:  # only a head start: cohort.html imports it again and reports any error
         pass
 
@@ -473,6 +560,38 @@ def _row_of(future, subject: Subject) -> dict:
                 "case": str(subject.case)}
 
 
+def worker_start_method() -> str:
+    """How the embedded cluster starts its worker processes: ``fork`` on Linux, else ``spawn``.
+
+    A forked worker starts with every module of the build already imported by this process;
+    a spawned one starts a new interpreter and imports dask, numpy, scipy, gmsh and our stages
+    again. Measured on 2 cores: the cluster up and ready to build in 0.1-0.2 s instead of
+    0.9-1.0 s, and closed in 0.03 s instead of 0.2 s. macOS and Windows cannot fork safely.
+    """
+    return "fork" if sys.platform.startswith("linux") else "spawn"
+
+
+def _import_build_modules() -> None:
+    """Import what a build imports, before the workers fork, so that they inherit it.
+
+    Done here, in this thread, and finished before any fork: a module half imported by another
+    thread at the moment of a fork would stay half imported, its lock held, in the worker.
+    """
+    import importlib
+
+    from fibers import pipeline
+
+    for name in pipeline.LATER_IMPORTS:
+        importlib.import_module(name)
+
+
+# Held while a thread of ours imports: a fork (a worker started or restarted) waits for it.
+_IMPORTING = threading.Lock()
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(before=_IMPORTING.acquire, after_in_parent=_IMPORTING.release,
+                        after_in_child=_IMPORTING.release)
+
+
 def _connect(workers, memory, scheduler):
     """A client of an existing scheduler, or of a new local cluster; and how many builds run at once."""
     import dask
@@ -488,9 +607,13 @@ def _connect(workers, memory, scheduler):
         return client, None, max(slots, 1)
     workers = workers or default_workers()
     memory = memory or fair_memory(workers)
+    method = worker_start_method()
+    if method == "fork":
+        _import_build_modules()
     # A worker that dies takes its subject with it: one more try elsewhere, then the subject fails.
     with dask.config.set({"distributed.scheduler.allowed-failures": RETRIES_AFTER_WORKER_DEATH,
-                          "distributed.nanny.pre-spawn-environ": WORKER_ENV}):
+                          "distributed.nanny.pre-spawn-environ": WORKER_ENV,
+                          "distributed.worker.multiprocessing-method": method}):
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                memory_limit=memory, env=dict(WORKER_ENV), dashboard_address=":0",
                                silence_logs=logging.CRITICAL)

@@ -147,7 +147,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
 
 # What the stages after meshing import on first use (the multigrid, the mesh-file writers):
 # about 0.15 s, imported on a second thread while gmsh meshes (gmsh's calls release the GIL).
-_LATER_IMPORTS = ("pyamg", "scipy.sparse.linalg", "scipy.spatial", "meshio", "h5py", "fibers.surface_distance",
+LATER_IMPORTS = ("pyamg", "scipy.sparse.linalg", "scipy.spatial", "meshio", "h5py", "fibers.surface_distance",
                   "fibers.segment_table", "fibers.io.outputs", "fibers.io.pools", "fibers.io.vtkxml")
 
 
@@ -156,7 +156,7 @@ def _import_later_stages() -> None:
     import sys
     import threading
 
-    missing = [name for name in _LATER_IMPORTS if name not in sys.modules]
+    missing = [name for name in LATER_IMPORTS if name not in sys.modules]
     if missing:
         threading.Thread(target=lambda: [importlib.import_module(name) for name in missing],
                          name="fibers-imports", daemon=True).start()

@@ -108,7 +108,9 @@ def test_worker_killed_mid_build(cases, tmp_path):
     workers = []
     deadline = time.monotonic() + 120
     while len(workers) < 2 and time.monotonic() < deadline:
-        workers = [p for p in me.children(recursive=True) if "spawn_main" in " ".join(p.cmdline())]
+        # a spawned worker runs multiprocessing's spawn_main; a forked one (Linux) keeps our command line
+        workers = [p for p in me.children(recursive=True)
+                   if "spawn_main" in " ".join(p.cmdline()) or p.cmdline() == me.cmdline()]
         time.sleep(0.2)
     assert len(workers) == 2
     # wait until the builds run (a worker's process is busy), then kill one worker outright
@@ -162,3 +164,53 @@ def test_outliers_by_median_and_scaled_mad():
     np.testing.assert_array_equal(outlier_mask(values), expected)
     assert outlier_mask(values)[-2:].all()
     assert not outlier_mask(np.full(5, 3.0)).any()  # no spread, nothing to flag
+
+
+def _ring_stack(r_endo, r_epi, n_sides, slices, spacing, rotation=np.eye(3)):
+    """Contours of a thick-walled cylinder: regular polygons, one endo and one epi per slice."""
+    from fibers.types import RawContours
+
+    angle = 2 * np.pi * np.arange(n_sides) / n_sides
+    ring = np.column_stack([np.cos(angle), np.sin(angle), np.zeros(n_sides)])
+    structure, slice_id, points = [], [], []
+    for k in range(slices):
+        for name, r, turn in (("endo", r_endo, 1), ("epi", r_epi, -1)):  # either winding
+            structure += [name] * n_sides
+            slice_id += [k] * n_sides
+            points.append((r * ring[::turn] + [3.0, -2.0, k * spacing]) @ rotation.T)
+    return RawContours(structure=np.array(structure), slice_id=np.array(slice_id), points=np.concatenate(points),
+                       line=np.arange(len(slice_id)) + 2)
+
+
+def test_contour_wall_volume_of_a_tilted_cylinder():
+    # Reference: a regular N-gon of circumradius r has area (N/2) r^2 sin(2 pi / N) (elementary
+    # geometry); the stack's volume is the sum of the wall areas times the spacing.
+    from scipy.spatial.transform import Rotation
+
+    n, r_endo, r_epi, slices, spacing = 48, 22.0, 31.0, 9, 8.0
+    area = 0.5 * n * np.sin(2 * np.pi / n) * (r_epi**2 - r_endo**2)
+    tilt = Rotation.from_euler("xz", [25.0, 40.0], degrees=True).as_matrix()
+    for rotation in (np.eye(3), tilt):
+        got = cohort.contour_wall_volume_mm3(_ring_stack(r_endo, r_epi, n, slices, spacing, rotation))
+        assert got == pytest.approx(area * slices * spacing, rel=1e-12)
+
+
+def test_builds_are_handed_out_largest_first(tmp_path):
+    # Longest processing time first (Graham 1969): the largest estimated mesh starts first; a
+    # case whose inputs cannot be read is placed at the median of the others.
+    from fibers.io.case import case_text
+    from fibers.io.contours import write_contours
+
+    for name, r_epi in (("small", 26.0), ("large", 36.0), ("middle", 31.0)):
+        (tmp_path / name).mkdir()
+        write_contours(tmp_path / name / "contours.csv", _ring_stack(20.0, r_epi, 40, 8, 8.0))
+        (tmp_path / name / "case.toml").write_text(case_text())
+    (tmp_path / "unreadable").mkdir()
+    (tmp_path / "unreadable" / "case.toml").write_text(case_text())  # its contours.csv is missing
+    subjects = cohort.find_subjects([tmp_path / n for n in ("small", "unreadable", "large", "middle")])
+    order = cohort.build_order(subjects, cohort.Options())
+    names = [s.name for s, _ in order]
+    assert names[0] == "large" and names[-1] == "small"
+    sizes = dict((s.name, size) for s, size in order)
+    assert sizes["unreadable"] == sizes["middle"]
+    assert sizes["large"] > sizes["middle"] > sizes["small"] > 0
