@@ -567,6 +567,9 @@ def worker_start_method() -> str:
     a spawned one starts a new interpreter and imports dask, numpy, scipy, gmsh and our stages
     again. Measured on 2 cores: the cluster up and ready to build in 0.1-0.2 s instead of
     0.9-1.0 s, and closed in 0.03 s instead of 0.2 s. macOS and Windows cannot fork safely.
+    A forked worker also inherits this process's BLAS threads: the command line sets
+    ``OPENBLAS_NUM_THREADS=1`` before numpy is imported; a script calling :func:`run_cohort`
+    should do the same.
     """
     return "fork" if sys.platform.startswith("linux") else "spawn"
 
