@@ -246,14 +246,19 @@ def surface_distances(mesh: WallMesh, points: np.ndarray | None = None) -> tuple
     """
     from fibers.surface_distance import distance_to_surface
 
-    nodes = points is None
-    points = mesh.points if nodes else np.asarray(points, float).reshape(-1, 3)
-    d_endo = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == ENDO])
-    d_epi = distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == EPI])
-    if nodes:  # nodes of a surface lie on it: exact 0 and 1 there, as for the Laplace depth
-        d_endo[mesh.face_nodes(ENDO)] = 0.0
-        d_epi[mesh.face_nodes(EPI)] = 0.0
-    return d_endo, d_epi
+    if points is not None:
+        points = np.asarray(points, float).reshape(-1, 3)
+        return tuple(distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == tag])
+                     for tag in (ENDO, EPI))
+    out = []
+    for tag in (ENDO, EPI):
+        # nodes of a surface lie on it: exactly 0 there (as for the Laplace depth), not searched
+        d = np.zeros(len(mesh.points))
+        off = np.ones(len(mesh.points), bool)
+        off[mesh.face_nodes(tag)] = False
+        d[off] = distance_to_surface(mesh.points[off], mesh.points, mesh.faces[mesh.face_tags == tag])
+        out.append(d)
+    return tuple(out)
 
 
 def _fraction(d_endo: np.ndarray, d_epi: np.ndarray) -> np.ndarray:
