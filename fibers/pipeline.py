@@ -11,6 +11,7 @@ import logging
 import shutil
 import time
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -117,21 +118,32 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                 wall = quad.linear
         with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None else "no landmarks"):
             septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
-            aha = segments.label_cells(wall, septum)
         if septum is None:
             warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
                           "circumferential angles start from an arbitrary direction; add [landmarks] to the case file")
-        with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
-            coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector)
-        with clock.stage("architecture", "fiber, sheet, sheet-normal"):
-            arch = architecture.assign(coords, case.law, wall, septal=septum is not None)
-            if quad is not None:
-                quad = quadratic.with_cell_fields(quad, coords, case.law, septum)
         box = box or _contour_box(contours, case.pools.margin)
-        with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
-            pool_set = pool_stage.build_pools(wall, coords, case.law, septum, case.pools, box=box)
-            # a count of 0 means "no such pool": absent from the files and the report
-            pool_set = {k: v for k, v in pool_set.items() if getattr(case.pools, k, 1) > 0}
+        # What needs the mesh alone runs on a second thread while the Laplace problems are
+        # solved (numpy's array work and the k-d queries release the GIL): the distances to
+        # the two surfaces first (the coordinates wait for them), then the pools' points (only
+        # their fields wait for the coordinates) and the elements' segment labels. Same
+        # numbers, same bytes.
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="fibers-mesh-only") as second:
+            distances = second.submit(coordinates.surface_distances, wall)
+            drawn = second.submit(pool_stage.draw_positions, wall, case.pools, box=box)
+            labels = second.submit(segments.label_cells, wall, septum)
+            with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
+                coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector,
+                                             distances=distances)
+            with clock.stage("architecture", "fiber, sheet, sheet-normal"):
+                arch = architecture.assign(coords, case.law, wall, septal=septum is not None)
+                if quad is not None:
+                    quad = quadratic.with_cell_fields(quad, coords, case.law, septum)
+            with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
+                pool_set = pool_stage.build_pools(wall, coords, case.law, septum, case.pools, box=box,
+                                                  drawn=drawn.result())
+                # a count of 0 means "no such pool": absent from the files and the report
+                pool_set = {k: v for k, v in pool_set.items() if getattr(case.pools, k, 1) > 0}
+                aha = labels.result()
         caught = [str(w.message) for w in record]
     for message in list(stack.warnings) + caught:
         log.warning("%s", message)

@@ -328,7 +328,8 @@ def _check(settings: PoolSettings) -> None:
 
 
 def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSettings, *,
-                box: Box | None = None, locator: Locator | None = None) -> dict[str, Pool]:
+                box: Box | None = None, locator: Locator | None = None,
+                drawn: dict | None = None) -> dict[str, Pool]:
     """Draw all six pools.
 
     Parameters
@@ -344,27 +345,51 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
         Region of the background pool. Default: `default_box` with ``settings.margin``.
     locator : Locator, optional
         A locator of this mesh to reuse.
+    drawn : dict, optional
+        The positions from :func:`draw_positions` for this mesh, settings and box, drawn
+        earlier (the pipeline draws them while the coordinates are solved).
 
     Returns
     -------
     dict of str to Pool
         Keyed by `POOL_NAMES`.
     """
+    drawn = draw_positions(mesh, settings, box=box, locator=locator) if drawn is None else drawn
+    pools = {}
+    for name in POOL_NAMES:
+        arrays = dict(drawn[name])
+        if "_cells" in arrays:  # a pool in the wall or on its faces: the fields at its points
+            cells, weights = arrays.pop("_cells"), arrays.pop("_weights")
+            ids = {k: arrays.pop(k) for k in ("face", "tet") if k in arrays}
+            arrays.update(point_fields(arrays["points"], cells, weights, mesh, coords, law, septum))
+            arrays.update(ids)
+        pools[name] = Pool(name, arrays)
+    if settings.float32:
+        pools = {name: Pool(name, as_float32(pool.arrays)) for name, pool in pools.items()}
+    return pools
+
+
+def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = None,
+                   locator: Locator | None = None) -> dict[str, dict]:
+    """The points of every pool and what they are drawn from, before any field is evaluated.
+
+    Needs the mesh alone, not the coordinates. Returns, per pool name, its arrays; the pools in
+    the wall and on the faces also carry ``_cells`` (the nodes of each point's element or face)
+    and ``_weights`` (its barycentric weights), from which :func:`build_pools` interpolates.
+    """
     _check(settings)
     box = default_box(mesh, settings.margin) if box is None else box
     rngs = dict(zip(POOL_NAMES, np.random.default_rng(settings.seed).spawn(len(POOL_NAMES))))
-    pools = {}
+    drawn = {}
 
     n = int(settings.myocardium)
     unit = _unit(rngs["myocardium"], n, 4, settings.sampler)
     volumes = mesh.cell_volumes
     tet = _pick(np.abs(volumes), unit[:, 0])
     bary = fold_to_tet(unit[:, 1:])
-    points = np.einsum("km,kmj->kj", bary, mesh.points[mesh.tets[tet]])
-    arrays = {"points": points}
-    arrays.update(point_fields(points, mesh.tets[tet], bary, mesh, coords, law, septum))
-    arrays["tet"] = tet
-    pools["myocardium"] = Pool("myocardium", arrays)
+    cells = mesh.tets[tet]
+    drawn["myocardium"] = {"points": np.einsum("km,kmj->kj", bary, mesh.points[cells]), "tet": tet,
+                           "_cells": cells, "_weights": bary}
     log.debug("pool myocardium: %d points", n)
 
     normals, areas = meshtools.triangle_normals(mesh.points, mesh.faces)
@@ -378,12 +403,10 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
         unit = _unit(rngs[name], n, 3, settings.sampler)
         face = rows[_pick(areas[rows], unit[:, 0])] if n else np.zeros(0, np.int64)
         w = fold_to_triangle(unit[:, 1:])
-        points = np.einsum("km,kmj->kj", w, mesh.points[mesh.faces[face]])
-        arrays = {"points": points, "normal": normals[face]}
-        arrays.update(point_fields(points, mesh.faces[face], w, mesh, coords, law, septum))
-        arrays["face"] = face
-        arrays["tet"] = owner[face] if n else np.zeros(0, np.int64)
-        pools[name] = Pool(name, arrays)
+        cells = mesh.faces[face]
+        drawn[name] = {"points": np.einsum("km,kmj->kj", w, mesh.points[cells]), "normal": normals[face],
+                       "face": face, "tet": owner[face] if n else np.zeros(0, np.int64),
+                       "_cells": cells, "_weights": w}
         log.debug("pool %s: %d points", name, n)
 
     if (settings.cavity or settings.background) and not np.any(mesh.face_tags == ENDO):
@@ -399,7 +422,7 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     cav_box = Box(corner=mesh.axis.to_world(lo), edges=(hi - lo)[:, None] * frame)
     points = _rejection(rngs["cavity"], int(settings.cavity), settings.sampler,
                         cav_box.sample, cavity, 0.5)
-    pools["cavity"] = Pool("cavity", {"points": points})
+    drawn["cavity"] = {"points": points}
     log.debug("pool cavity: %d points", len(points))
 
     # outside the wall: the ray-parity test against endo and epi faces is exact for this mesh
@@ -415,12 +438,10 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
     depth = segments.depth_below_base(points, mesh.axis)
     region = np.where(depth < 0.0, ABOVE_BASE,
                       np.where(cavity(points) if len(points) else False, CAVITY, OUTSIDE))
-    pools["background"] = Pool("background", {"points": points, "region": region.astype(np.int8),
-                                              "region_names": np.array(REGION_NAMES)})
+    drawn["background"] = {"points": points, "region": region.astype(np.int8),
+                           "region_names": np.array(REGION_NAMES)}
     log.debug("pool background: %d points", len(points))
-    if settings.float32:
-        pools = {name: Pool(name, as_float32(pool.arrays)) for name, pool in pools.items()}
-    return {name: pools[name] for name in POOL_NAMES}
+    return drawn
 
 
 def as_float32(arrays: dict) -> dict:
