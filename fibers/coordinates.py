@@ -125,7 +125,7 @@ class CardiacCoordinates:
 
 
 def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
-            tol: float = 1e-6, distances=None) -> CardiacCoordinates:
+            tol: float = 1e-5, distances=None) -> CardiacCoordinates:
     """Solve for the cardiac coordinates and frames of a wall mesh.
 
     Parameters
@@ -137,10 +137,12 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         to the long axis and is projected onto the plane normal to it. Default
         ``mesh.axis.reference``.
     tol : float
-        Relative residual of the two Laplace solves. 1e-6 leaves an algebraic error of about
-        2e-6 in the coordinates (measured at 550k tetrahedra against a 1e-10 solve), two to
-        three orders below the P1 discretisation error at 1-2 mm meshes, for 40% fewer CG
-        iterations than 1e-10.
+        Relative residual of the two Laplace solves. Measured on the demo ventricle at 547k
+        tetrahedra against a 1e-10 solve: 1e-5 leaves at most 2e-5 in the transmural and 7e-5
+        in the apicobasal coordinate (both run from 0 to 1) and turns the frames by at most
+        0.005 degrees (radial) and 0.09 degrees (longitudinal, in an element), for 20 and 11
+        CG iterations instead of 25 and 13 at 1e-6 (0.41 s instead of 0.51 s for both solves).
+        The rule's own angles are given in whole degrees.
     distances : concurrent.futures.Future, optional
         A future of ``surface_distances(mesh)`` already running elsewhere (the pipeline runs it
         on its second thread, before the pools' points). Default: run on a thread of our own.
