@@ -54,13 +54,13 @@ opposite vectors would cancel, the heavier of the two is taken instead.
 from __future__ import annotations
 
 import logging
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 
 import numpy as np
 
 from fibers import fem
 from fibers.errors import InputError
+from fibers.sidework import side_thread
 from fibers.types import BASE, ENDO, EPI, WallMesh
 from fibers.vectors import cross
 
@@ -174,7 +174,7 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
         d_endo, d_epi = distances.result()
     else:
-        with ThreadPoolExecutor(max_workers=1) as pool:
+        with side_thread("fibers-distances") as pool:
             distances = pool.submit(surface_distances, mesh)
             result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
             d_endo, d_epi = distances.result()

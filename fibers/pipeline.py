@@ -11,7 +11,6 @@ import logging
 import shutil
 import time
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -22,6 +21,7 @@ from fibers import architecture, budget, coordinates, mesh as mesh_stage, pools 
 from fibers import quadratic, segments, stack as stack_stage, surfaces as surface_stage
 from fibers.config import Box, Landmarks
 from fibers.io.folder import rearm_signals, signals_blocked
+from fibers.sidework import side_thread
 from fibers.types import ENDO, EPI, BASE, RawContours
 
 log = logging.getLogger("fibers")
@@ -127,7 +127,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # the two surfaces first (the coordinates wait for them), then the pools' points (only
         # their fields wait for the coordinates) and the elements' segment labels. Same
         # numbers, same bytes.
-        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="fibers-mesh-only") as second:
+        with side_thread("fibers-mesh-only") as second:
             distances = second.submit(coordinates.surface_distances, wall)
             drawn = second.submit(pool_stage.draw_positions, wall, case.pools, box=box)
             labels = second.submit(segments.label_cells, wall, septum)

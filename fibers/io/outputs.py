@@ -77,15 +77,14 @@ def write_all(folder: Path, result) -> None:
     Uncompressed binary throughout: zlib compression tripled the writing time for files that
     shrink by less than half.
     """
-    from concurrent.futures import ThreadPoolExecutor
-
     from fibers.io.pools import write_pools
+    from fibers.sidework import side_thread
 
     fem = fem_mesh(result)
     # Writing is mostly the kernel copying bytes into new file pages, which releases the GIL:
     # mesh.vtu and mesh.msh go on a second thread while the rest is written here, 0.5-0.6 of
     # the time in sequence at 547k tetrahedra (about 230 MB in all).
-    with ThreadPoolExecutor(max_workers=1) as pool:
+    with side_thread("fibers-write") as pool:
         job = pool.submit(_write_vtu_and_msh, folder, fem)
         write_xdmf(folder, fem)
         write_surfaces(folder / "surfaces.vtp", result)
