@@ -15,6 +15,7 @@ import scipy.sparse as sp
 
 from fibers.errors import InputError
 from fibers.meshtools import index_dtype
+from fibers.vectors import cross_columns
 
 log = logging.getLogger(__name__)
 
@@ -50,9 +51,9 @@ def tet_gradients(points: np.ndarray, tets: np.ndarray) -> tuple[np.ndarray, np.
     e3 = p[:, t[3]] - x0
     # Rows of the inverse Jacobian are the cofactor cross products divided by the determinant,
     # which avoids a batched LAPACK inverse.
-    c23 = _cross_rows(e2, e3)
-    c31 = _cross_rows(e3, e1)
-    c12 = _cross_rows(e1, e2)
+    c23 = cross_columns(e2, e3)
+    c31 = cross_columns(e3, e1)
+    c12 = cross_columns(e1, e2)
     det = e1[0] * c23[0] + e1[1] * c23[1] + e1[2] * c23[2]
     scale = (e1[0] * e1[0] + e1[1] * e1[1] + e1[2] * e1[2]) ** 1.5
     bad = np.abs(det) <= 1e-12 * np.maximum(scale, 1e-300)
@@ -115,11 +116,6 @@ def stiffness(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | Non
 
 # local vertex pairs of the six edges of a tetrahedron
 _EDGES = (np.array([0, 0, 0, 1, 1, 2]), np.array([1, 2, 3, 2, 3, 3]))
-
-
-def _cross_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Cross products of component-first (3, M) arrays."""
-    return np.stack([a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]])
 
 
 def _amg_vcycle(A: sp.csr_matrix):

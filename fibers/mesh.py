@@ -16,6 +16,7 @@ import numpy as np
 from fibers import meshtools
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
+from fibers.vectors import cross_columns
 
 log = logging.getLogger(__name__)
 
@@ -128,14 +129,17 @@ def surface_rings(surfaces: Surfaces, name: str, size: float) -> list[tuple[np.n
     circ = np.linalg.norm(np.diff(
         surfaces.local_point(name, t_rows[1:, None] * mu_bc[None, :], np.broadcast_to(th_c, (n_rows, len(th_c)))
                              ).reshape(n_rows, len(th_c), 3)[:, np.r_[0:len(th_c), 0]], axis=1), axis=2).sum(axis=1)
-    for j, t in enumerate(t_rows[1:], start=1):
-        n = max(6, int(round(circ[j - 1] / size)))
-        theta = -np.pi + 2 * np.pi * (np.arange(n) + 0.5 * (j % 2)) / n
-        mu = t * surfaces.base_mu(name, theta) if j < n_rows else surfaces.base_mu(name, theta)
-        pts = surfaces.local_point(name, mu, theta)
-        if j == n_rows:
-            pts[:, 2] = 0.0  # the rim lies in the base plane exactly
-        rings.append((pts, theta))
+    counts = [max(6, int(round(c / size))) for c in circ]
+    thetas = [-np.pi + 2 * np.pi * (np.arange(n) + 0.5 * (j % 2)) / n for j, n in enumerate(counts, start=1)]
+    # every ring's nodes at once: one bisection for the base of all their meridians (the base
+    # angle of each meridian is its own root; one call per ring cost seconds at 1 mm)
+    theta = np.concatenate(thetas)
+    t = np.repeat(t_rows[1:], counts)
+    t[-counts[-1]:] = 1.0  # the rim: on the base plane itself
+    pts = surfaces.local_point(name, t * surfaces.base_mu(name, theta), theta)
+    pts[-counts[-1]:, 2] = 0.0  # the rim lies in the base plane exactly
+    ends = np.cumsum(counts)
+    rings += list(zip(np.split(pts, ends[:-1]), thetas))
     return rings
 
 
@@ -146,15 +150,16 @@ def _base_rings(surfaces: Surfaces, endo_rim, epi_rim, size):
     gap = np.mean(rho(epi_rim)) - np.mean(rho(endo_rim))
     n_rows = max(1, int(np.ceil(gap / (ROW * size))))
     rings = [endo_rim]
-    for i in range(1, n_rows):
-        f = i / n_rows
+    if n_rows > 1:
+        f = np.arange(1, n_rows) / n_rows
         r_mean = (1 - f) * rho(endo_rim).mean() + f * rho(epi_rim).mean()
-        n = max(6, int(round(2 * np.pi * r_mean / size)))
-        theta = -np.pi + 2 * np.pi * (np.arange(n) + 0.5 * (i % 2)) / n
-        r_in = _rim_radius(surfaces, "endo", theta)
-        r_out = _rim_radius(surfaces, "epi", theta)
-        r = (1 - f) * r_in + f * r_out
-        rings.append((np.column_stack([r * np.cos(theta), r * np.sin(theta), np.zeros(n)]), theta))
+        counts = [max(6, int(round(2 * np.pi * r / size))) for r in r_mean]
+        thetas = [-np.pi + 2 * np.pi * (np.arange(n) + 0.5 * (i % 2)) / n for i, n in enumerate(counts, start=1)]
+        theta = np.concatenate(thetas)   # every ring at once: one root search per surface
+        share = np.repeat(f, counts)
+        r = (1 - share) * _rim_radius(surfaces, "endo", theta) + share * _rim_radius(surfaces, "epi", theta)
+        flat = np.column_stack([r * np.cos(theta), r * np.sin(theta), np.zeros(len(theta))])
+        rings += list(zip(np.split(flat, np.cumsum(counts)[:-1]), thetas))
     rings.append(epi_rim)
     return rings
 
@@ -323,24 +328,29 @@ def volumes_mm3(wall: WallMesh) -> tuple[float, float]:
 
 def tet_quality(points: np.ndarray, tets: np.ndarray) -> dict:
     """Quality statistics: volume, radius ratio (1 for a regular tetrahedron) and dihedral angles."""
-    vol = meshtools.signed_volumes(points, tets)
-    a, b, c, d = (points[tets[:, k]] for k in range(4))
-    faces = [(b, c, d), (a, d, c), (a, b, d), (a, c, b)]
-    areas = np.stack([0.5 * np.linalg.norm(np.cross(q - p, r - p), axis=1) for p, q, r in faces], axis=1)
-    r_in = 3 * vol / areas.sum(axis=1)
-    # circumradius from the edge lengths (formula of the tetrahedron's circumsphere)
+    # component-first (3, M) arrays: every product and sum over contiguous rows
+    p = np.ascontiguousarray(np.asarray(points, float).T)
+    t = np.ascontiguousarray(np.asarray(tets).T)
+    a, b, c, d = (p[:, t[k]] for k in range(4))
     ab, ac, ad = b - a, c - a, d - a
-    num = np.linalg.norm(
-        (ab * ab).sum(1)[:, None] * np.cross(ac, ad) + (ac * ac).sum(1)[:, None] * np.cross(ad, ab)
-        + (ad * ad).sum(1)[:, None] * np.cross(ab, ac), axis=1)
-    r_out = num / (12 * np.abs(vol))
+    # the outward-ordered faces (b, c, d), (a, d, c), (a, b, d), (a, c, b): their normals times
+    # twice their areas
+    n = [cross_columns(c - b, d - b), cross_columns(ad, ac), cross_columns(ab, ad), cross_columns(ac, ab)]
+    vol = -(n[3][0] * ad[0] + n[3][1] * ad[1] + n[3][2] * ad[2]) / 6.0   # (ab x ac) . ad / 6
+    length = [np.sqrt(v[0] * v[0] + v[1] * v[1] + v[2] * v[2]) for v in n]
+    r_in = 3 * vol / (0.5 * (length[0] + length[1] + length[2] + length[3]))
+    # circumradius from the edge lengths (formula of the tetrahedron's circumsphere):
+    # |ab|^2 (ac x ad) + |ac|^2 (ad x ab) + |ad|^2 (ab x ac), whose cross products are n1, n2, n3
+    # with their signs turned (the sign does not change the length)
+    sq = [(e * e).sum(axis=0) for e in (ab, ac, ad)]
+    s = sq[0] * n[1] + sq[1] * n[2] + sq[2] * n[3]
+    r_out = np.sqrt(s[0] * s[0] + s[1] * s[1] + s[2] * s[2]) / (12 * np.abs(vol))
     ratio = 3 * r_in / r_out
     # dihedral angles from the face normals of each edge's two faces
-    n = np.stack([np.cross(q - p, r - p) for p, q, r in faces], axis=1)
-    n /= np.linalg.norm(n, axis=2, keepdims=True)
+    unit = [v / w for v, w in zip(n, length)]
     pairs = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
-    dihedral = np.degrees(np.pi - np.arccos(np.clip(
-        np.stack([(n[:, i] * n[:, j]).sum(1) for i, j in pairs], axis=1), -1, 1)))
+    cosines = np.stack([(unit[i] * unit[j]).sum(axis=0) for i, j in pairs])
+    dihedral = np.degrees(np.pi - np.arccos(np.clip(cosines, -1, 1)))
     return {
         "tetrahedra": int(len(tets)),
         "nodes": int(len(points)),

@@ -70,15 +70,46 @@ class Surfaces:
     def base_mu(self, surface: str, theta: np.ndarray) -> np.ndarray:
         """mu where the surface meets the base plane z = 0, for each theta (bisection)."""
         theta = np.asarray(theta, float)
-        lo = np.full(theta.shape, 1e-3)
-        hi = np.full(theta.shape, np.pi - 1e-3)
+        lam_at = self._along_meridians(surface, theta.ravel())
+        zc, d = self.systems[surface]
+        lo = np.full(theta.size, 1e-3)
+        hi = np.full(theta.size, np.pi - 1e-3)
         for _ in range(60):
             mid = 0.5 * (lo + hi)
-            z = self.local_point(surface, mid, theta)[:, 2].reshape(theta.shape)
+            z = zc - d * np.cosh(lam_at(mid)) * np.cos(mid)   # the local z of _prolate_to_local
             below = z < 0  # still under the base plane: go further toward the base
             lo = np.where(below, mid, lo)
             hi = np.where(below, hi, mid)
-        return 0.5 * (lo + hi)
+        return (0.5 * (lo + hi)).reshape(theta.shape)
+
+    def _along_meridians(self, surface: str, theta: np.ndarray):
+        """``mu -> L(mu, theta)`` for fixed angles theta (K,): the Fourier factors computed once.
+
+        The same sum as :meth:`lam` grouped by Legendre degree: L = sum_k P_k(u) (a_k + sum_m
+        sin(mu)^m (b_mk cos m theta + c_mk sin m theta)), so each call of a root search costs a
+        few (K, 7) products instead of the (K, 47) basis.
+        """
+        coef = self.coef[surface]
+        n_axial, n_harm = DEGREE_AXIAL + 1, DEGREE_HARMONIC + 1
+        axial = coef[:n_axial]
+        harm = coef[n_axial:].reshape(HARMONICS, 2, n_harm)            # m, (cos, sin), k
+        m = np.arange(1, HARMONICS + 1)
+        per_point = (np.cos(np.outer(theta, m))[:, :, None] * harm[None, :, 0]
+                     + np.sin(np.outer(theta, m))[:, :, None] * harm[None, :, 1])   # (K, m, k)
+        scale = np.sin(0.5 * self.mu_max[surface]) ** 2
+
+        def lam_at(mu):
+            u = 2.0 * np.sin(0.5 * mu) ** 2 / scale - 1.0
+            s = np.sin(mu)
+            weights = per_point[:, 0] * s[:, None]
+            power = s
+            for j in range(1, HARMONICS):
+                power = power * s
+                weights = weights + per_point[:, j] * power[:, None]
+            return (np.polynomial.legendre.legvander(u, DEGREE_AXIAL) @ axial
+                    + np.einsum("kj,kj->k", np.polynomial.legendre.legvander(u, DEGREE_HARMONIC), weights))
+
+        return lam_at
 
     def distance(self, surface: str, world: np.ndarray) -> np.ndarray:
         """Signed distance (K,) mm of world points near a surface, positive outside it.

@@ -22,6 +22,11 @@ def cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return out
 
 
+def cross_columns(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Cross products of component-first arrays (3, M): each product runs over contiguous rows."""
+    return np.stack([a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]])
+
+
 def unit_rows(v: np.ndarray) -> np.ndarray:
     """Rows of ``v`` (K, 3) scaled to unit length; zero rows stay zero."""
     return v / np.maximum(np.linalg.norm(v, axis=1), 1e-300)[:, None]
