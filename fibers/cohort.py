@@ -494,20 +494,22 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
     """
     from distributed import wait
 
+    order = build_order(todo, options)  # before the cluster starts, which would wait for it idle
     client, cluster, slots = _connect(workers, memory, scheduler)
     progress.slots = slots
     finished_all = False
-    threading.Thread(target=_import_drawing, name="fibers-cohort-import", daemon=True).start()
     try:
         link = _dashboard(client)
         log.info("cohort: %d to build on %d worker%s%s", len(todo), slots, "" if slots == 1 else "s",
                  f"; dashboard {link}" if link else "")
         by_key = {}
-        for s, size in build_order(todo, options):
+        for s, size in order:
             future = client.submit(build_subject, s.name, str(s.case), str(out / s.name), options,
                                    key=f"fibers-build-{s.name}-{os.urandom(4).hex()}", pure=False,
                                    retries=0, priority=int(size))
             by_key[future.key] = (s, future)
+        # cohort.html's plotting library, imported while the workers build
+        threading.Thread(target=_import_drawing, name="fibers-cohort-import", daemon=True).start()
         pending = {f for _, f in by_key.values()}
         progress.running = min(slots, len(pending))
         notify(progress)

@@ -117,7 +117,8 @@ def _distributions_png(built, cols, flags) -> bytes:
         ax.set_axis_off()
     fig.suptitle(f"{len(built)} built subjects: shaded band median ± {OUTLIER_MADS:g} MAD (scaled), "
                  f"outliers in red")
-    fig.tight_layout()
+    # fixed margins: tight_layout measured every tick label first, a third of the drawing time
+    fig.subplots_adjust(left=0.045, right=0.99, top=0.89, bottom=0.03, wspace=0.28, hspace=0.22)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90)
     plt.close(fig)
