@@ -125,8 +125,9 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # What needs the mesh alone runs on a second thread while the Laplace problems are
         # solved (numpy's array work and the k-d queries release the GIL): the distances to
         # the two surfaces first (the coordinates wait for them), then the pools' points (only
-        # their fields wait for the coordinates) and the elements' segment labels. Same
-        # numbers, same bytes.
+        # their fields wait for the coordinates) and the elements' segment labels. On a cohort
+        # worker, which has one core, they run in turn instead (fibers.sidework). Same numbers,
+        # same bytes.
         with side_thread("fibers-mesh-only") as second:
             distances = second.submit(coordinates.surface_distances, wall)
             drawn = second.submit(pool_stage.draw_positions, wall, case.pools, box=box)
@@ -160,7 +161,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
 # What the stages after meshing import on first use (the multigrid, the mesh-file writers):
 # about 0.15 s, imported on a second thread while gmsh meshes (gmsh's calls release the GIL).
 LATER_IMPORTS = ("pyamg", "scipy.sparse.linalg", "scipy.spatial", "meshio", "h5py", "fibers.surface_distance",
-                  "fibers.segment_table", "fibers.io.outputs", "fibers.io.pools", "fibers.io.vtkxml")
+                 "fibers.segment_table", "fibers.io.outputs", "fibers.io.pools", "fibers.io.vtkxml")
 
 
 def _import_later_stages() -> None:

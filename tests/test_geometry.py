@@ -114,3 +114,16 @@ def test_apex_extrapolated_beyond_last_slice(exact_oblique):
     assert np.linalg.norm(wall.epi_apex - true_epi_apex) < 1.5
     assert np.linalg.norm(wall.endo_apex - true_endo_apex) < 2.5
     assert (st.axis.base_centre - wall.epi_apex) @ st.axis.direction > st.slices[-1].height
+
+
+def test_base_of_the_meridians(exact_oblique):
+    # The root search of the base runs on the surface's sum grouped by Legendre degree; it must
+    # be the same function as the full basis, and its roots must lie in the base plane z = 0.
+    _, _, (_, sf, _) = exact_oblique
+    rng = np.random.default_rng(3)
+    theta = rng.uniform(-np.pi, np.pi, 500)
+    mu = rng.uniform(0.0, 3.0, 500)
+    for name in ("endo", "epi"):
+        np.testing.assert_allclose(sf._along_meridians(name, theta)(mu), sf.lam(name, mu, theta), atol=1e-13)
+        rim = sf.local_point(name, sf.base_mu(name, theta), theta)
+        assert np.abs(rim[:, 2]).max() < 1e-9
