@@ -70,7 +70,7 @@ class Surfaces:
     def base_mu(self, surface: str, theta: np.ndarray) -> np.ndarray:
         """mu where the surface meets the base plane z = 0, for each theta (bisection)."""
         theta = np.asarray(theta, float)
-        lam_at = self._along_meridians(surface, theta.ravel())
+        lam_at = self.along_meridians(surface, theta.ravel())
         zc, d = self.systems[surface]
         lo = np.full(theta.size, 1e-3)
         hi = np.full(theta.size, np.pi - 1e-3)
@@ -82,7 +82,7 @@ class Surfaces:
             hi = np.where(below, hi, mid)
         return (0.5 * (lo + hi)).reshape(theta.shape)
 
-    def _along_meridians(self, surface: str, theta: np.ndarray):
+    def along_meridians(self, surface: str, theta: np.ndarray):
         """``mu -> L(mu, theta)`` for fixed angles theta (K,): the Fourier factors computed once.
 
         The same sum as :meth:`lam` grouped by Legendre degree: L = sum_k P_k(u) (a_k + sum_m

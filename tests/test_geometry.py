@@ -124,6 +124,6 @@ def test_base_of_the_meridians(exact_oblique):
     theta = rng.uniform(-np.pi, np.pi, 500)
     mu = rng.uniform(0.0, 3.0, 500)
     for name in ("endo", "epi"):
-        np.testing.assert_allclose(sf._along_meridians(name, theta)(mu), sf.lam(name, mu, theta), atol=1e-13)
+        np.testing.assert_allclose(sf.along_meridians(name, theta)(mu), sf.lam(name, mu, theta), atol=1e-13)
         rim = sf.local_point(name, sf.base_mu(name, theta), theta)
         assert np.abs(rim[:, 2]).max() < 1e-9
