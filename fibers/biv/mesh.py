@@ -134,9 +134,8 @@ def _outer_rings(lv: Surfaces, right: RightSurfaces, size: float):
     mu_b = lv.base_mu("epi", th_f)
 
     def pushed(t, theta, mu_base):
+        # (the rim row, t = 1, comes out of the base's root search within 1e-13 mm of the plane)
         p = lv.local_point("epi", t * mu_base, theta)
-        if np.ndim(t) == 0 and t == 1.0:
-            p[:, 2] = 0.0
         wo = right.outer_width(p[:, 2], theta)
         return p + wo[:, None] * np.column_stack([np.cos(theta), np.sin(theta), np.zeros_like(theta)])
 
@@ -146,14 +145,20 @@ def _outer_rings(lv: Surfaces, right: RightSurfaces, size: float):
     n_rows = max(2, int(np.ceil(arc[-1] / (ROW * size))))
     t_rows = np.interp(np.linspace(0.0, arc[-1], n_rows + 1), arc, t_fine)
     rings = [(lv.local_point("epi", np.array([0.0]), np.array([0.0])), np.array([-np.pi]))]
-    for j, t in enumerate(t_rows[1:], start=1):
-        t = 1.0 if j == n_rows else float(t)
-        curve = pushed(np.full_like(th_f, t), th_f, mu_b)
-        s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(curve, axis=0), axis=1))])
-        n = max(6, int(round(s[-1] / size)))
-        theta = np.interp((np.arange(n) + 0.5 * (j % 2)) * s[-1] / n, s, th_f)
-        pts = pushed(np.full_like(theta, t), theta, lv.base_mu("epi", theta))
-        rings.append((pts, theta))
+    t_rows = t_rows[1:].copy()
+    t_rows[-1] = 1.0
+    # every row at once, in two passes: the fine curves (for each row's arc length), then the
+    # rows' nodes (one root search for the base of all their meridians)
+    fine = len(th_f)
+    curves = pushed(np.repeat(t_rows, fine), np.tile(th_f, n_rows), np.tile(mu_b, n_rows)).reshape(n_rows, fine, 3)
+    arcs = np.concatenate([np.zeros((n_rows, 1)), np.cumsum(np.linalg.norm(np.diff(curves, axis=1), axis=2), axis=1)],
+                          axis=1)
+    counts = [max(6, int(round(a[-1] / size))) for a in arcs]
+    thetas = [np.interp((np.arange(n) + 0.5 * (j % 2)) * a[-1] / n, a, th_f)
+              for j, (n, a) in enumerate(zip(counts, arcs), start=1)]
+    theta = np.concatenate(thetas)
+    pts = pushed(np.repeat(t_rows, counts), theta, lv.base_mu("epi", theta))
+    rings += list(zip(np.split(pts, np.cumsum(counts)[:-1]), thetas))
     return rings
 
 
