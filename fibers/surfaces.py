@@ -70,14 +70,12 @@ class Surfaces:
     def base_mu(self, surface: str, theta: np.ndarray) -> np.ndarray:
         """mu where the surface meets the base plane z = 0, for each theta (bisection)."""
         theta = np.asarray(theta, float)
-        lam_at = self.along_meridians(surface, theta.ravel())
-        zc, d = self.systems[surface]
+        height = self.meridian_heights(surface, theta.ravel())
         lo = np.full(theta.size, 1e-3)
         hi = np.full(theta.size, np.pi - 1e-3)
         for _ in range(60):
             mid = 0.5 * (lo + hi)
-            z = zc - d * np.cosh(lam_at(mid)) * np.cos(mid)   # the local z of _prolate_to_local
-            below = z < 0  # still under the base plane: go further toward the base
+            below = height(mid) < 0  # still under the base plane: go further toward the base
             lo = np.where(below, mid, lo)
             hi = np.where(below, hi, mid)
         return (0.5 * (lo + hi)).reshape(theta.shape)
@@ -96,10 +94,10 @@ class Surfaces:
         m = np.arange(1, HARMONICS + 1)
         per_point = (np.cos(np.outer(theta, m))[:, :, None] * harm[None, :, 0]
                      + np.sin(np.outer(theta, m))[:, :, None] * harm[None, :, 1])   # (K, m, k)
-        scale = np.sin(0.5 * self.mu_max[surface]) ** 2
+        mu_max = self.mu_max[surface]
 
         def lam_at(mu):
-            u = 2.0 * np.sin(0.5 * mu) ** 2 / scale - 1.0
+            u = _axial_variable(mu, mu_max)
             s = np.sin(mu)
             weights = per_point[:, 0] * s[:, None]
             power = s
@@ -110,6 +108,13 @@ class Surfaces:
                     + np.einsum("kj,kj->k", np.polynomial.legendre.legvander(u, DEGREE_HARMONIC), weights))
 
         return lam_at
+
+    def meridian_heights(self, surface: str, theta: np.ndarray):
+        """``mu -> z`` (K,): the local height of the surface on fixed meridians theta (K,), for
+        root searches along them (`along_meridians`)."""
+        lam_at = self.along_meridians(surface, theta)
+        zc, d = self.systems[surface]
+        return lambda mu: _local_height(lam_at(mu), mu, d, zc)
 
     def distance(self, surface: str, world: np.ndarray) -> np.ndarray:
         """Signed distance (K,) mm of world points near a surface, positive outside it.
@@ -251,7 +256,17 @@ def _local_to_prolate(local: np.ndarray, d: float, zc: float):
 
 def _prolate_to_local(lam, mu, theta, d, zc):
     rho = d * np.sinh(lam) * np.sin(mu)
-    return np.column_stack([rho * np.cos(theta), rho * np.sin(theta), zc - d * np.cosh(lam) * np.cos(mu)])
+    return np.column_stack([rho * np.cos(theta), rho * np.sin(theta), _local_height(lam, mu, d, zc)])
+
+
+def _local_height(lam, mu, d, zc):
+    """Height z in the axis frame of the prolate point (lam, mu) of a system (zc, d)."""
+    return zc - d * np.cosh(lam) * np.cos(mu)
+
+
+def _axial_variable(mu, mu_max):
+    """The Legendre variable u in [-1, 1]: sin^2(mu / 2) scaled to the surface's mu range."""
+    return 2.0 * np.sin(0.5 * np.asarray(mu)) ** 2 / np.sin(0.5 * mu_max) ** 2 - 1.0
 
 
 def _metric(lam, mu, d):
@@ -264,7 +279,7 @@ def _basis(mu: np.ndarray, theta: np.ndarray, mu_max: float) -> np.ndarray:
     sin(mu)^m cos / sin(m theta) for the harmonics."""
     # polynomials in sin^2(mu / 2), an even function of mu: a smooth surface of revolution has
     # zero slope dL/dmu at the pole, so the extrapolated apex cannot come out as a cone
-    u = 2.0 * np.sin(0.5 * np.asarray(mu)) ** 2 / np.sin(0.5 * mu_max) ** 2 - 1.0
+    u = _axial_variable(mu, mu_max)
     cols = [np.polynomial.legendre.legvander(u, DEGREE_AXIAL)]
     vh = np.polynomial.legendre.legvander(u, DEGREE_HARMONIC)
     s = np.sin(mu)
