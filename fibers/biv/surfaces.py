@@ -109,29 +109,29 @@ class RightSurfaces:
         before, took seconds for the elements of a mesh (same numbers to the bit).
         """
         z = np.asarray(z, float)
-        i0, i1, f = _columns(x, grid, periodic)
-        return (1 - f) * self._along_columns(values, z, closes_at, i0, smooth) \
-            + f * self._along_columns(values, z, closes_at, i1, smooth)
-
-    def _along_columns(self, values, z, closes_at, col, smooth) -> np.ndarray:
-        """Column ``col[k]`` of the slice values along the axis at each z[k] (see ``_along_at``)."""
         top, last = self.heights[-1], self.heights[0]
         zc = np.clip(z, last, top)
         if len(self.heights) > 1:
             pieces = PchipInterpolator(self.heights, values, axis=0, extrapolate=False)
-            i = np.clip(np.searchsorted(pieces.x, zc, side="right") - 1, 0, len(pieces.x) - 2)
-            s = zc - pieces.x[i]
-            c = pieces.c[:, i, col]                      # (4, K): cubic, ..., constant
-            # summed from the constant term up, in the order of scipy's own evaluation
-            inside = c[3] + c[2] * s
-            power = s * s
-            inside = inside + c[1] * power
-            inside = inside + c[0] * (power * s)
-        else:
-            inside = values[0][col]
-        f = np.clip((z - closes_at) / max(last - closes_at, 1e-9), 0.0, 1.0)
-        fall = np.sin(0.5 * np.pi * f) ** 2 if smooth else np.sqrt(f)
-        return np.where(z < last, values[0][col] * fall, inside)
+            piece = np.clip(np.searchsorted(pieces.x, zc, side="right") - 1, 0, len(pieces.x) - 2)
+            offset = zc - pieces.x[piece]
+        fall = np.clip((z - closes_at) / max(last - closes_at, 1e-9), 0.0, 1.0)
+        fall = np.sin(0.5 * np.pi * fall) ** 2 if smooth else np.sqrt(fall)
+
+        def column(col):  # column col[k] of the slice values along the axis at each z[k]
+            if len(self.heights) > 1:
+                c = pieces.c[:, piece, col]                      # (4, K): cubic, ..., constant
+                # summed from the constant term up, in the order of scipy's own evaluation
+                inside = c[3] + c[2] * offset
+                power = offset * offset
+                inside = inside + c[1] * power
+                inside = inside + c[0] * (power * offset)
+            else:
+                inside = values[0][col]
+            return np.where(z < last, values[0][col] * fall, inside)
+
+        i0, i1, f = _columns(x, grid, periodic)
+        return (1 - f) * column(i0) + f * column(i1)
 
     def span_at(self, z) -> tuple[np.ndarray, np.ndarray]:
         """Insertion angles (K,), (K,) radians at heights z; constant beyond the slices."""
@@ -191,13 +191,12 @@ def epi_point(lv: Surfaces, z, theta) -> tuple[np.ndarray, np.ndarray]:
     monotonically with mu from the apical pole to the base).
     """
     z, theta = np.broadcast_arrays(np.asarray(z, float).ravel(), np.asarray(theta, float).ravel())
-    lam_at = lv.along_meridians("epi", theta)  # the Fourier factors of each meridian, once
-    zc, d = lv.systems["epi"]
+    height = lv.meridian_heights("epi", theta)  # the Fourier factors of each meridian, once
     lo = np.full(z.shape, 1e-6)
     hi = np.full(z.shape, np.pi - 1e-3)
     for _ in range(34):  # pi / 2^34: well below a micrometre on the surface
         mid = 0.5 * (lo + hi)
-        below = zc - d * np.cosh(lam_at(mid)) * np.cos(mid) < z   # the local height at mid
+        below = height(mid) < z
         lo = np.where(below, mid, lo)
         hi = np.where(below, hi, mid)
     p = lv.local_point("epi", 0.5 * (lo + hi), theta)
