@@ -170,14 +170,11 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     # The thickness depth (exact distances to both surfaces) needs nothing of the Laplace
     # fields: it runs on a second thread meanwhile. The k-d tree queries and numpy's array
     # arithmetic release the GIL, so on two cores it costs little more than the solves alone.
-    if distances is not None:
+    with side_thread("fibers-distances") as pool:  # its thread starts only if used
+        if distances is None:
+            distances = pool.submit(surface_distances, mesh)
         result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
         d_endo, d_epi = distances.result()
-    else:
-        with side_thread("fibers-distances") as pool:
-            distances = pool.submit(surface_distances, mesh)
-            result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
-            d_endo, d_epi = distances.result()
     thickness = _fraction(d_endo, d_epi)
     return replace(result, thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1),
                    wall_thickness=d_endo + d_epi)
