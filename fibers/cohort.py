@@ -593,12 +593,9 @@ def _import_build_modules() -> None:
     Done here, in this thread, and finished before any fork: a module half imported by another
     thread at the moment of a fork would stay half imported, its lock held, in the worker.
     """
-    import importlib
-
     from fibers import pipeline
 
-    for name in pipeline.LATER_IMPORTS:
-        importlib.import_module(name)
+    pipeline.import_later_stages(background=False)
 
 
 # Held while a thread of ours imports: a fork (a worker started or restarted) waits for it.

@@ -101,7 +101,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         plan = budget.check_mesh_size(surf, case.mesh_size, getattr(case, "max_tets", budget.MAX_TETS))
         log.info("%-13s %7s    about %s tetrahedra expected; thinnest wall %.1f mm", "budget", "",
                  f"{plan['estimated_tets']:,}", plan["thinnest_wall_mm"])
-        _import_later_stages()
+        import_later_stages()
         with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
             # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
             # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,
@@ -168,15 +168,23 @@ LATER_IMPORTS = ("pyamg", "scipy.sparse.linalg", "scipy.spatial", "meshio", "h5p
                  "fibers.segment_table", "fibers.io.outputs", "fibers.io.pools", "fibers.io.vtkxml")
 
 
-def _import_later_stages() -> None:
+def import_later_stages(*, background: bool = True) -> None:
+    """Import `LATER_IMPORTS` not imported yet: on a daemon thread, or here and now
+    (``background=False``, as `fibers.cohort` does before it forks its workers)."""
     import importlib
     import sys
     import threading
 
     missing = [name for name in LATER_IMPORTS if name not in sys.modules]
-    if missing:
-        threading.Thread(target=lambda: [importlib.import_module(name) for name in missing],
-                         name="fibers-imports", daemon=True).start()
+
+    def load():
+        for name in missing:
+            importlib.import_module(name)
+
+    if missing and background:
+        threading.Thread(target=load, name="fibers-imports", daemon=True).start()
+    elif missing:
+        load()
 
 
 def _mesh_line(wall, quad) -> str:
