@@ -126,8 +126,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # solved (numpy's array work and the k-d queries release the GIL): the distances to
         # the two surfaces first (the coordinates wait for them), then the pools' points (only
         # their fields wait for the coordinates) and the elements' segment labels. On a cohort
-        # worker, which has one core, they run in turn instead (fibers.sidework). Same numbers,
-        # same bytes.
+        # worker, which has one core, each runs when the stage that needs it asks for it
+        # (fibers.sidework), so its time counts there. Same numbers, same bytes.
         with side_thread("fibers-mesh-only") as second:
             distances = second.submit(coordinates.surface_distances, wall)
             drawn = second.submit(pool_stage.draw_positions, wall, case.pools, box=box)
@@ -136,7 +136,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                 coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector,
                                              distances=distances)
             # the pools' fields beside the architecture: both need only the coordinates (the
-            # side executor runs jobs in order, so the points it waits for are drawn by then).
+            # second thread runs jobs in order, so the points it waits for are drawn by then).
             # At 547k: architecture plus pools 0.29-0.39 s instead of 0.44-0.49 s.
             fields = second.submit(lambda: pool_stage.build_pools(wall, coords, case.law, septum, case.pools,
                                                                   box=box, drawn=drawn.result()))

@@ -31,6 +31,27 @@ def test_in_turn_on_one_core(one_core):
         jobs = [side.submit(order.append, k) for k in range(3)]
         broken = side.submit(int, "not a number")
         assert side.submit(_where).result() == threading.current_thread().name
-    assert order == [0, 1, 2] and all(j.done() for j in jobs)
+    assert order == [0, 1, 2] and all(j.done() for j in jobs)  # the ones not asked for ran at the end
     with pytest.raises(ValueError):  # a job's error comes back from result(), as from a thread
         broken.result()
+
+
+def test_in_turn_runs_when_asked(one_core):
+    # a job's time falls in the stage that asks for its result (the build's stage timings)
+    order = []
+    with sidework.side_thread("fibers-test") as side:
+        first = side.submit(order.append, "first")
+        second = side.submit(order.append, "second")
+        order.append("main")
+        second.result()
+        assert order == ["main", "second"] and not first.done()
+    assert order == ["main", "second", "first"]
+
+
+def test_in_turn_drops_the_rest_after_an_error(one_core):
+    order = []
+    with pytest.raises(KeyError):
+        with sidework.side_thread("fibers-test") as side:
+            side.submit(order.append, 1)
+            raise KeyError("stop")
+    assert order == []
