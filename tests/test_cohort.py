@@ -113,11 +113,13 @@ def test_worker_killed_mid_build(cases, tmp_path):
                    if "spawn_main" in " ".join(p.cmdline()) or p.cmdline() == me.cmdline()]
         time.sleep(0.2)
     assert len(workers) == 2
-    # wait until the builds run (a worker's process is busy), then kill one worker outright
-    while not list(out.glob("subject-*")) and workers[0].cpu_percent(0.5) < 50 and time.monotonic() < deadline:
-        pass
-    time.sleep(1.0)
-    os.kill(workers[0].pid, signal.SIGKILL)
+    # kill a worker outright the moment its process is busy building (a build here takes about
+    # 3 s and its process stays alive until the cohort ends, so the kill always finds it)
+    busy = None
+    while busy is None and time.monotonic() < deadline:
+        busy = next((p for p in workers if p.cpu_percent(0.2) > 50), None)
+    assert busy is not None, "no worker started building"
+    busy.send_signal(signal.SIGKILL)
     _, err = proc.communicate(timeout=600)
     rows = _rows(out)
     statuses = sorted(r["status"] for r in rows.values())
