@@ -10,6 +10,8 @@ fills the volume with its HXT algorithm (on one thread: reproducible, and here n
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -24,7 +26,7 @@ ROW = np.sqrt(3.0) / 2.0  # ring spacing of equilateral triangles, in edge lengt
 
 
 def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> WallMesh:
-    """Tetrahedralise the wall.
+    """Tetrahedralise the wall: `wall_boundary`, then `fill_wall`.
 
     Parameters
     ----------
@@ -42,7 +44,54 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
     WallMesh
         Positively oriented tetrahedra, boundary faces tagged and oriented out of the wall.
     """
-    axis = surfaces.axis
+    return fill_wall(surfaces, wall_boundary(surfaces, size=size), size=size, threads=threads)
+
+
+@dataclass(frozen=True)
+class Boundary:
+    """The wall's closed boundary as we triangulate it, before gmsh fills the volume.
+
+    These triangles are exactly the boundary faces of the finished mesh (gmsh keeps discrete
+    surfaces as given), so what needs the boundary alone (the cavity and background pools) can
+    be computed from it while gmsh works. ``points``, ``faces``, ``face_tags``, ``axis`` and
+    ``face_nodes`` read as a `WallMesh`'s do, in this triangulation's own node numbering.
+
+    Attributes
+    ----------
+    local : ndarray (P, 3), mm
+        Node positions in the long-axis frame.
+    tri : dict of int to ndarray (F, 3)
+        Triangles per face tag (endo, epi, base), oriented out of the wall.
+    rims : dict of str to ndarray
+        The endocardial and epicardial rims (closed node loops in the base plane).
+    axis : LongAxis
+    """
+
+    local: np.ndarray
+    tri: dict
+    rims: dict
+    axis: object
+
+    @cached_property
+    def points(self) -> np.ndarray:
+        return self.axis.to_world(self.local)
+
+    @cached_property
+    def faces(self) -> np.ndarray:
+        return np.concatenate(list(self.tri.values()))
+
+    @cached_property
+    def face_tags(self) -> np.ndarray:
+        return np.concatenate([np.full(len(f), tag) for tag, f in self.tri.items()])
+
+    def face_nodes(self, tag: int) -> np.ndarray:
+        """Sorted unique node indices on the triangles with this tag."""
+        return np.unique(self.tri[tag])
+
+
+def wall_boundary(surfaces: Surfaces, *, size: float = 1.5) -> Boundary:
+    """Triangulate the wall's boundary at edge length ``size`` mm: endocardium and epicardium
+    in rings from their apical poles to the base plane, and the base annulus between the rims."""
     endo_rings = surface_rings(surfaces, "endo", size)
     epi_rings = surface_rings(surfaces, "epi", size)
     base_rings = _base_rings(surfaces, endo_rings[-1], epi_rings[-1], size)
@@ -66,8 +115,8 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
         EPI: stitch_rings(epi_idx, [r[1] for r in epi_rings]),
         BASE: stitch_rings(base_idx, [r[1] for r in base_rings]),
     }
-    # hand gmsh consistently oriented surfaces (out of the wall: endo into the cavity, epi
-    # outward, base toward +z); the final faces come from the tetrahedra themselves
+    # consistently oriented surfaces (out of the wall: endo into the cavity, epi outward, base
+    # toward +z); the final mesh's faces come from its tetrahedra themselves
     centre = np.array([0.0, 0.0, surfaces.systems["epi"][0]])
     for tag, faces in tri.items():
         n, a = meshtools.triangle_normals(local, faces)
@@ -80,8 +129,13 @@ def build_mesh(surfaces: Surfaces, *, size: float = 1.5, threads: int = 1) -> Wa
             wrong = out < 0 if tag == EPI else out > 0
         if wrong:
             tri[tag] = faces[:, ::-1]
+    return Boundary(local=local, tri=tri, rims={"endo": endo_idx[-1], "epi": epi_idx[-1]}, axis=surfaces.axis)
 
-    points, tets, tri = fill_volume(local, tri, {"endo": endo_idx[-1], "epi": epi_idx[-1]},
+
+def fill_wall(surfaces: Surfaces, boundary: Boundary, *, size: float = 1.5, threads: int = 1) -> WallMesh:
+    """The tetrahedral wall inside ``boundary`` (from `wall_boundary` at the same ``size``)."""
+    axis = surfaces.axis
+    points, tets, tri = fill_volume(boundary.local, boundary.tri, boundary.rims,
                                     {ENDO: ["endo"], EPI: ["epi"], BASE: ["endo", "epi"]}, size, threads)
     points_world = axis.to_world(points)
     tets = meshtools.orient_positive(points_world, tets)

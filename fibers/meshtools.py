@@ -24,6 +24,14 @@ def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", cross(b - a, c - a), d - a) / 6.0
 
 
+def enclosed_volume(points: np.ndarray, faces: np.ndarray) -> float:
+    """Volume mm^3 inside closed, outward-oriented triangles (divergence theorem about their
+    centroid, which keeps the terms small)."""
+    rel = points - points[faces].reshape(-1, 3).mean(axis=0) if len(faces) else points
+    a, b, c = (rel[faces[:, k]] for k in range(3))
+    return float(np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0)
+
+
 def orient_positive(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
     """Return a copy of ``tets`` with every element positively oriented."""
     tets = np.array(tets, dtype=np.int64, copy=True)

@@ -102,35 +102,45 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         log.info("%-13s %7s    about %s tetrahedra expected; thinnest wall %.1f mm", "budget", "",
                  f"{plan['estimated_tets']:,}", plan["thinnest_wall_mm"])
         import_later_stages()
-        with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
-            # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
-            # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,
-            # a signal that came meanwhile then unwinds the build like Ctrl-C
-            with signals_blocked():
-                try:
-                    wall = mesh_stage.build_mesh(surf, size=case.mesh_size)
-                finally:
-                    rearm_signals()
-            quad = None
-            if getattr(case, "mesh_order", 1) == 2:
-                # every later stage works on the 8 linear children of each 10-node element
-                quad = quadratic.elevate(wall, surf)
-                wall = quad.linear
-        with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None else "no landmarks"):
-            septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
-        if septum is None:
-            warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
-                          "circumferential angles start from an arbitrary direction; add [landmarks] to the case file")
         box = box or _contour_box(contours, case.pools.margin)
-        # What needs the mesh alone runs on a second thread while the Laplace problems are
-        # solved (numpy's array work and the k-d queries release the GIL): the distances to
-        # the two surfaces first (the coordinates wait for them), then the pools' points (only
-        # their fields wait for the coordinates) and the elements' segment labels. On a cohort
-        # worker, which has one core, each runs when the stage that needs it asks for it
-        # (fibers.sidework), so its time counts there. Same numbers, same bytes.
-        with side_thread("fibers-mesh-only") as second:
+        # What needs the mesh alone runs on a second thread beside the main line (numpy's array
+        # work, the k-d queries and gmsh's calls release the GIL): the cavity and background
+        # pools need only the boundary we triangulate, so they are drawn while gmsh fills the
+        # volume; then the distances to the two surfaces (the coordinates wait for them), the
+        # other pools' points (only their fields wait for the coordinates) and the elements'
+        # segment labels, while the Laplace problems are solved. On a cohort worker, which has
+        # one core, each runs when the stage that needs it asks for it (fibers.sidework), so its
+        # time counts there. Same numbers, same bytes.
+        with side_thread("fibers-side") as second:
+            with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
+                # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
+                # Python handler could not run inside gmsh anyway, as with Ctrl-C), re-armed after,
+                # a signal that came meanwhile then unwinds the build like Ctrl-C
+                with signals_blocked():
+                    try:
+                        boundary = mesh_stage.wall_boundary(surf, size=case.mesh_size)
+                        order = getattr(case, "mesh_order", 1)
+                        # at order 2 the pools are drawn on the linear children's finer faces
+                        outside = (second.submit(pool_stage.draw_outside, boundary, case.pools, box=box)
+                                   if order == 1 else None)
+                        wall = mesh_stage.fill_wall(surf, boundary, size=case.mesh_size)
+                    finally:
+                        rearm_signals()
+                quad = None
+                if order == 2:
+                    # every later stage works on the 8 linear children of each 10-node element
+                    quad = quadratic.elevate(wall, surf)
+                    wall = quad.linear
+            with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None
+                             else "no landmarks"):
+                septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
+            if septum is None:
+                warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
+                              "circumferential angles start from an arbitrary direction; add [landmarks] to the "
+                              "case file")
             distances = second.submit(coordinates.surface_distances, wall)
-            drawn = second.submit(pool_stage.draw_positions, wall, case.pools, box=box)
+            drawn = second.submit(lambda: pool_stage.draw_positions(
+                wall, case.pools, box=box, outside=None if outside is None else outside.result()))
             labels = second.submit(segments.label_cells, wall, septum)
             with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
                 coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector,

@@ -370,12 +370,14 @@ def build_pools(mesh: WallMesh, coords, law: FiberLaw, septum, settings: PoolSet
 
 
 def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = None,
-                   locator: Locator | None = None) -> dict[str, dict]:
+                   locator: Locator | None = None, outside: dict | None = None) -> dict[str, dict]:
     """The points of every pool and what they are drawn from, before any field is evaluated.
 
     Needs the mesh alone, not the coordinates. Returns, per pool name, its arrays; the pools in
     the wall and on the faces also carry ``_cells`` (the nodes of each point's element or face)
     and ``_weights`` (its barycentric weights), from which :func:`build_pools` interpolates.
+    ``outside``: the cavity and background pools from :func:`draw_outside`, drawn earlier
+    with the same settings and box.
     """
     _check(settings)
     box = default_box(mesh, settings.margin) if box is None else box
@@ -409,17 +411,33 @@ def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = 
                        "_cells": cells, "_weights": w}
         log.debug("pool %s: %d points", name, n)
 
-    if (settings.cavity or settings.background) and not np.any(mesh.face_tags == ENDO):
+    drawn.update(draw_outside(mesh, settings, box=box, locator=locator) if outside is None else outside)
+    return drawn
+
+
+def draw_outside(surface, settings: PoolSettings, *, box: Box | None = None,
+                 locator: Locator | None = None) -> dict[str, dict]:
+    """The cavity and background pools' points, which need the wall's boundary alone.
+
+    ``surface`` is a `WallMesh` or the `fibers.mesh.Boundary` it is filled from: the same
+    triangles, so the same points (the pipeline draws them while gmsh fills the volume).
+    A ``locator`` (of a mesh) tells the wall instead of the boundary's parity.
+    """
+    _check(settings)
+    box = default_box(surface, settings.margin) if box is None else box
+    rngs = dict(zip(POOL_NAMES, np.random.default_rng(settings.seed).spawn(len(POOL_NAMES))))
+    drawn = {}
+    if (settings.cavity or settings.background) and not np.any(surface.face_tags == ENDO):
         raise InputError("the mesh has no endo faces, so the cavity cannot be told from the "
                          "background: set pools.cavity and pools.background to 0 or check the "
                          "face tags")
-    cavity = EnclosedTest(mesh) if settings.cavity or settings.background else None
-    endo_local = mesh.axis.to_local(mesh.points[mesh.face_nodes(ENDO)])
+    cavity = EnclosedTest(surface) if settings.cavity or settings.background else None
+    endo_local = surface.axis.to_local(surface.points[surface.face_nodes(ENDO)])
     lo = endo_local.min(axis=0)
     hi = np.r_[endo_local[:, :2].max(axis=0), 0.0]
     lo[2] = min(lo[2], -1e-9)
-    frame = mesh.axis.frame()
-    cav_box = Box(corner=mesh.axis.to_world(lo), edges=(hi - lo)[:, None] * frame)
+    frame = surface.axis.frame()
+    cav_box = Box(corner=surface.axis.to_world(lo), edges=(hi - lo)[:, None] * frame)
     points = _rejection(rngs["cavity"], int(settings.cavity), settings.sampler,
                         cav_box.sample, cavity, 0.5)
     drawn["cavity"] = {"points": points}
@@ -431,11 +449,12 @@ def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = 
     if locator is not None:
         in_wall = lambda p: locator(p)[0] >= 0  # noqa: E731
     elif settings.background:
-        in_wall = EnclosedTest(mesh, tags=(ENDO, EPI))
-    wall_share = float(np.abs(volumes).sum()) / max(box.volume, 1e-300)
+        in_wall = EnclosedTest(surface, tags=(ENDO, EPI))
+    # the guess only sizes the draws: the points are the same whatever it is (see _rejection)
+    wall_share = meshtools.enclosed_volume(surface.points, surface.faces) / max(box.volume, 1e-300)
     points = _rejection(rngs["background"], int(settings.background), settings.sampler,
                         box.sample, lambda p: ~in_wall(p), max(1.0 - wall_share, 0.05))
-    depth = segments.depth_below_base(points, mesh.axis)
+    depth = segments.depth_below_base(points, surface.axis)
     region = np.where(depth < 0.0, ABOVE_BASE,
                       np.where(cavity(points) if len(points) else False, CAVITY, OUTSIDE))
     drawn["background"] = {"points": points, "region": region.astype(np.int8),

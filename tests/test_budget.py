@@ -66,7 +66,7 @@ def test_too_small_a_size_is_refused_before_meshing(monkeypatch):
     def no_gmsh(*args, **kwargs):
         raise AssertionError("gmsh was called")
 
-    monkeypatch.setattr(mesh_stage, "build_mesh", no_gmsh)
+    monkeypatch.setattr(mesh_stage, "fill_volume", no_gmsh)
     contours, _ = ventricle.demo_subject().sample_stack(spacing=8.0, point_spacing=1.5, noise=0.4,
                                                         shift=2.0, seed=11)
     with pytest.raises(InputError) as err:

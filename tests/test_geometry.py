@@ -127,3 +127,27 @@ def test_base_of_the_meridians(exact_oblique):
         np.testing.assert_allclose(sf.along_meridians(name, theta)(mu), sf.lam(name, mu, theta), atol=1e-13)
         rim = sf.local_point(name, sf.base_mu(name, theta), theta)
         assert np.abs(rim[:, 2]).max() < 1e-9
+
+
+def test_boundary_is_the_finished_meshs_boundary(exact_oblique):
+    # gmsh keeps discrete surfaces as given (its documented behaviour for discrete entities),
+    # so the pipeline may draw the cavity and background pools from our triangulation while
+    # gmsh fills the volume: the same triangles, the same points, the same tags
+    _, _, (_, sf, wall) = exact_oblique
+    boundary = mesh.wall_boundary(sf, size=SIZE)
+
+    def keyed(points, faces, tags):
+        tri = np.sort(points[faces].round(12).view([("", float)] * 3).reshape(-1, 3), axis=1)
+        return sorted(zip(map(bytes, tri), tags.tolist()))
+
+    assert len(boundary.faces) == len(wall.faces)
+    assert keyed(boundary.points, boundary.faces, boundary.face_tags) == keyed(wall.points, wall.faces, wall.face_tags)
+    from fibers import pools
+    from fibers.config import PoolSettings
+
+    for sampler in ("random", "sobol"):
+        settings = PoolSettings(cavity=3_000, background=5_000, seed=3, sampler=sampler)
+        ours, theirs = pools.draw_outside(boundary, settings), pools.draw_outside(wall, settings)
+        for name in ("cavity", "background"):
+            for key, value in theirs[name].items():
+                assert np.array_equal(ours[name][key], value), (sampler, name, key)

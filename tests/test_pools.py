@@ -7,7 +7,7 @@ import pytest
 import shells
 from scipy import stats
 
-from fibers import coordinates, pools, segments
+from fibers import coordinates, meshtools, pools, segments
 from fibers.config import Box, FiberLaw, Landmarks, PoolSettings
 from fibers.errors import InputError
 from fibers.io.pools import read_pool, write_pools
@@ -222,6 +222,29 @@ def test_sobol_sampler(case):
     assert ((inner > 1) & (outer < 1)).mean() >= 0.995
     inner, _, z = levels(p["cavity"].arrays["points"])
     assert ((inner < 1) & (z < 0)).mean() >= 0.995
+
+
+def test_rejection_points_do_not_depend_on_the_rate_guess(case):
+    # the guess only sizes the draws (a stream of uniform numbers, or a Sobol sequence whose
+    # larger blocks start with the smaller ones: scipy.stats.qmc.Sobol.random_base2), so a
+    # boundary and its mesh, whose volume sums differ in the last bits, give the same points
+    mesh, _, _, box = case
+    test = pools.EnclosedTest(mesh, tags=(pools.ENDO, pools.EPI))
+    for sampler in ("random", "sobol"):
+        picked = [pools._rejection(np.random.default_rng(4), 3_000, sampler, box.sample, lambda p: ~test(p), rate)
+                  for rate in (0.05, 0.6, 1.0)]
+        assert all(np.array_equal(picked[0], p) for p in picked[1:]), sampler
+
+
+def test_enclosed_volume_of_the_closed_wall(case):
+    # the divergence theorem over the closed boundary equals the sum of the tetrahedra's volumes
+    # (both exact for a polyhedron), and a unit cube's twelve triangles enclose 1 (closed form)
+    mesh = case[0]
+    assert abs(meshtools.enclosed_volume(mesh.points, mesh.faces) - mesh.cell_volumes.sum()) < 1e-9 * mesh.cell_volumes.sum()
+    corners = np.array([[x, y, z] for x in (0, 1) for y in (0, 1) for z in (0, 1)], float) + 7.0
+    cube = np.array([[0, 1, 3], [0, 3, 2], [4, 6, 7], [4, 7, 5], [0, 4, 5], [0, 5, 1],
+                     [2, 3, 7], [2, 7, 6], [0, 2, 6], [0, 6, 4], [1, 5, 7], [1, 7, 3]])
+    assert abs(meshtools.enclosed_volume(corners, cube) - 1.0) < 1e-12
 
 
 def test_bad_settings(case):
