@@ -132,18 +132,21 @@ def wall_boundary(surfaces: Surfaces, *, size: float = 1.5) -> Boundary:
     return Boundary(local=local, tri=tri, rims={"endo": endo_idx[-1], "epi": epi_idx[-1]}, axis=surfaces.axis)
 
 
-def fill_wall(surfaces: Surfaces, boundary: Boundary, *, size: float = 1.5, threads: int = 1) -> WallMesh:
-    """The tetrahedral wall inside ``boundary`` (from `wall_boundary` at the same ``size``)."""
+def fill_wall(surfaces: Surfaces, boundary: Boundary, *, size: float = 1.5, threads: int = 1,
+              quality: bool = True) -> WallMesh:
+    """The tetrahedral wall inside ``boundary`` (from `wall_boundary` at the same ``size``).
+
+    ``quality=False`` leaves ``quality`` empty, for the caller to fill in with `tet_quality`
+    once it has handed the mesh to work that does not need it (the pipeline does).
+    """
     axis = surfaces.axis
     points, tets, tri = fill_volume(boundary.local, boundary.tri, boundary.rims,
                                     {ENDO: ["endo"], EPI: ["epi"], BASE: ["endo", "epi"]}, size, threads)
     points_world = axis.to_world(points)
-    tets = meshtools.orient_positive(points_world, tets)
-    faces, _ = meshtools.boundary_faces(tets)
-    face_tags = match_face_tags(faces, tri, len(points_world))
-    quality = tet_quality(points_world, tets)
+    tets, faces, face_tags = tagged_boundary(points_world, tets, tri)
     return WallMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
-                    endo_apex=surfaces.apex("endo"), epi_apex=surfaces.apex("epi"), quality=quality)
+                    endo_apex=surfaces.apex("endo"), epi_apex=surfaces.apex("epi"),
+                    quality=tet_quality(points_world, tets) if quality else {})
 
 
 def surface_rings(surfaces: Surfaces, name: str, size: float) -> list[tuple[np.ndarray, np.ndarray]]:
@@ -341,6 +344,35 @@ def fill_volume(local, tri: dict, rims: dict, bounds: dict, size: float, threads
     return points, tets, tri
 
 
+def tagged_boundary(points: np.ndarray, tets: np.ndarray, tri: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Positively oriented tetrahedra, their boundary faces (out of the wall) and the faces' tags.
+
+    Only elements touching our triangles' nodes are searched for boundary faces. That finds
+    every boundary face when gmsh kept our surfaces; that it did is checked by the count of
+    faces found against ours and by the volume of the tetrahedra against the volume our
+    triangles enclose (a hole or a part outside them would change it).
+
+    Raises
+    ------
+    RuntimeError
+        gmsh changed the boundary.
+    """
+    signed = meshtools.signed_volumes(points, tets)
+    tets = meshtools.orient_positive(points, tets, volumes=signed)
+    ours = np.concatenate(list(tri.values()))
+    on = np.zeros(len(points), bool)
+    on[ours] = True
+    faces, _ = meshtools.boundary_faces(tets, on)
+    face_tags = match_face_tags(faces, tri, len(points))
+    filled = float(np.abs(signed).sum())
+    enclosed = meshtools.enclosed_volume(points, faces)
+    if len(faces) != len(ours) or abs(filled - enclosed) > 1e-8 * abs(enclosed):
+        raise RuntimeError(f"gmsh's tetrahedra fill {filled:.6g} mm^3 with {len(faces)} boundary faces on our "
+                           f"{len(ours)} triangles enclosing {enclosed:.6g} mm^3; the mesh is not bounded by the "
+                           "fitted surfaces")
+    return tets, faces, face_tags
+
+
 def match_face_tags(faces, tri, n_points):
     """Tag (F,) of each boundary face of the tetrahedra, looked up among our tagged triangles.
 
@@ -404,7 +436,8 @@ def tet_quality(points: np.ndarray, tets: np.ndarray) -> dict:
     unit = [v / w for v, w in zip(n, length)]
     pairs = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
     cosines = np.stack([(unit[i] * unit[j]).sum(axis=0) for i, j in pairs])
-    dihedral = np.degrees(np.pi - np.arccos(np.clip(cosines, -1, 1)))
+    # the angle grows with the cosine: the extremes come from the extreme cosines alone
+    dihedral = np.degrees(np.pi - np.arccos(np.clip([cosines.min(), cosines.max()], -1, 1)))
     return {
         "tetrahedra": int(len(tets)),
         "nodes": int(len(points)),

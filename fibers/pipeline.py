@@ -106,9 +106,10 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # What needs the mesh alone runs on a second thread beside the main line (numpy's array
         # work, the k-d queries and gmsh's calls release the GIL): the cavity and background
         # pools need only the boundary we triangulate, so they are drawn while gmsh fills the
-        # volume; then the distances to the two surfaces (the coordinates wait for them), the
-        # other pools' points (only their fields wait for the coordinates) and the elements'
-        # segment labels, while the Laplace problems are solved. On a cohort worker, which has
+        # volume; then the distances to the two surfaces (the coordinates wait for them) and the
+        # other pools' points (only their fields wait for the coordinates), begun while the mesh's
+        # quality is measured, and the elements' segment labels, while the Laplace problems are
+        # solved. On a cohort worker, which has
         # one core, each runs when the stage that needs it asks for it (fibers.sidework), so its
         # time counts there. Same numbers, same bytes.
         with side_thread("fibers-side") as second:
@@ -123,14 +124,20 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                         # at order 2 the pools are drawn on the linear children's finer faces
                         outside = (second.submit(pool_stage.draw_outside, boundary, case.pools, box=box)
                                    if order == 1 else None)
-                        wall = mesh_stage.fill_wall(surf, boundary, size=case.mesh_size)
+                        wall = mesh_stage.fill_wall(surf, boundary, size=case.mesh_size, quality=False)
                     finally:
                         rearm_signals()
                 quad = None
                 if order == 2:
                     # every later stage works on the 8 linear children of each 10-node element
+                    wall.quality.update(mesh_stage.tet_quality(wall.points, wall.tets))
                     quad = quadratic.elevate(wall, surf)
                     wall = quad.linear
+                distances = second.submit(coordinates.surface_distances, wall)
+                drawn = second.submit(lambda: pool_stage.draw_positions(
+                    wall, case.pools, box=box, outside=None if outside is None else outside.result()))
+                if order == 1:  # the mesh's own statistics, while the side thread starts on the above
+                    wall.quality.update(mesh_stage.tet_quality(wall.points, wall.tets))
             with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None
                              else "no landmarks"):
                 septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
@@ -138,9 +145,6 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                 warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
                               "circumferential angles start from an arbitrary direction; add [landmarks] to the "
                               "case file")
-            distances = second.submit(coordinates.surface_distances, wall)
-            drawn = second.submit(lambda: pool_stage.draw_positions(
-                wall, case.pools, box=box, outside=None if outside is None else outside.result()))
             labels = second.submit(segments.label_cells, wall, septum)
             with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
                 coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector,

@@ -151,3 +151,35 @@ def test_boundary_is_the_finished_meshs_boundary(exact_oblique):
         for name in ("cavity", "background"):
             for key, value in theirs[name].items():
                 assert np.array_equal(ours[name][key], value), (sampler, name, key)
+
+
+def test_boundary_search_near_our_nodes_finds_every_face(exact_oblique):
+    # the faces found near our triangles' nodes are the full search's, row for row
+    from fibers import meshtools
+
+    _, _, (_, _, wall) = exact_oblique
+    on = np.zeros(len(wall.points), bool)
+    on[wall.faces] = True
+    full, owner = meshtools.boundary_faces(wall.tets)
+    near, near_owner = meshtools.boundary_faces(wall.tets, on)
+    assert np.array_equal(full, near) and np.array_equal(owner, near_owner)
+    assert np.array_equal(near, wall.faces)
+
+
+def test_a_boundary_gmsh_changed_is_refused(exact_oblique):
+    # a hole inside the wall (an element with no node on the boundary taken out) leaves the
+    # faces near our nodes as they were, so only the volume check can see it; an element
+    # with a boundary face taken out changes the faces found
+    from fibers import meshtools
+
+    _, _, (_, _, wall) = exact_oblique
+    tri = {tag: wall.faces[wall.face_tags == tag] for tag in (ENDO, EPI, BASE)}
+    tets, faces, tags = mesh.tagged_boundary(wall.points, wall.tets, tri)
+    assert np.array_equal(faces, wall.faces) and np.array_equal(tags, wall.face_tags)
+    on = np.zeros(len(wall.points), bool)
+    on[wall.faces] = True
+    inner = np.flatnonzero(~on[wall.tets].any(axis=1))[0]
+    outer = meshtools.boundary_faces(wall.tets)[1][0]
+    for dropped in (inner, outer):
+        with pytest.raises(RuntimeError, match="not bounded by the fitted surfaces"):
+            mesh.tagged_boundary(wall.points, np.delete(wall.tets, dropped, axis=0), tri)

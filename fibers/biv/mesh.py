@@ -28,7 +28,7 @@ from scipy.spatial import cKDTree
 
 from fibers import meshtools
 from fibers.biv.surfaces import RightSurfaces
-from fibers.mesh import ROW, fill_volume, match_face_tags, stitch_rings, stitch_steps, surface_rings, tet_quality
+from fibers.mesh import ROW, fill_volume, stitch_rings, stitch_steps, surface_rings, tagged_boundary, tet_quality
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
 
@@ -95,9 +95,7 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
                                     size, threads, name="biventricular wall")
     axis = lv.axis
     points_world = axis.to_world(points)
-    tets = meshtools.orient_positive(points_world, tets)
-    faces, _ = meshtools.boundary_faces(tets)
-    face_tags = match_face_tags(faces, tri, len(points_world))
+    tets, faces, face_tags = tagged_boundary(points_world, tets, tri)
     region = label_regions(points, tets, right)
     return BiVMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                    endo_apex=lv.apex("endo"), epi_apex=lv.apex("epi"),
