@@ -192,7 +192,8 @@ class EnclosedTest:
 
     Parameters
     ----------
-    mesh : WallMesh
+    mesh : WallMesh or fibers.mesh.Boundary
+        Anything with ``axis``, ``points``, ``faces`` and ``face_tags``.
     tags : tuple of int
         Face tags making up the surface.
     """
@@ -263,9 +264,9 @@ class EnclosedTest:
 def _rejection(rng, n, sampler, draw, accept, rate) -> np.ndarray:
     """The first n points of ``draw(unit cube points)`` that pass ``accept``.
 
-    ``rate`` guesses the acceptance rate to size the draws. It is fixed by the inputs, so the
-    same inputs and seed give the same points. Sobol draws grow by doubling the block, so a
-    larger block starts with the points of the smaller one.
+    ``rate`` guesses the acceptance rate to size the draws, and only that: random draws come
+    in batches of one stream, and Sobol draws grow by doubling the block, whose larger blocks
+    start with the points of the smaller ones, so the points are the same whatever the guess.
     """
     if n == 0:
         return np.zeros((0, 3))
