@@ -405,10 +405,8 @@ def volumes_mm3(wall: WallMesh) -> tuple[float, float]:
     The cavity volume is the divergence theorem over the endocardial faces with the origin in
     the base plane, where the cap's contribution x . n vanishes.
     """
-    rel = wall.points - wall.axis.base_centre
-    endo = wall.faces[wall.face_tags == ENDO]
-    a, b, c = (rel[endo[:, k]] for k in range(3))
-    cavity = -np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0
+    # the endocardial faces point into the cavity, so the volume they enclose is negative
+    cavity = -meshtools.enclosed_volume(wall.points, wall.faces[wall.face_tags == ENDO], origin=wall.axis.base_centre)
     return float(wall.cell_volumes.sum()), float(cavity)
 
 

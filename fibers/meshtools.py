@@ -24,10 +24,13 @@ def signed_volumes(points: np.ndarray, tets: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", cross(b - a, c - a), d - a) / 6.0
 
 
-def enclosed_volume(points: np.ndarray, faces: np.ndarray) -> float:
-    """Volume mm^3 inside closed, outward-oriented triangles (divergence theorem about their
-    centroid, which keeps the terms small)."""
-    rel = points - points[faces].reshape(-1, 3).mean(axis=0) if len(faces) else points
+def enclosed_volume(points: np.ndarray, faces: np.ndarray, origin: np.ndarray | None = None) -> float:
+    """Volume mm^3 inside closed, outward-oriented triangles, by the divergence theorem about
+    ``origin`` (default their centroid, which keeps the terms small). An open surface closed
+    by a plane through ``origin`` counts as closed: the plane's part, x . n, vanishes there."""
+    if origin is None:
+        origin = points[faces].reshape(-1, 3).mean(axis=0) if len(faces) else np.zeros(3)
+    rel = points - origin
     a, b, c = (rel[faces[:, k]] for k in range(3))
     return float(np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0)
 

@@ -109,9 +109,9 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # volume; then the distances to the two surfaces (the coordinates wait for them) and the
         # other pools' points (only their fields wait for the coordinates), begun while the mesh's
         # quality is measured, and the elements' segment labels, while the Laplace problems are
-        # solved. On a cohort worker, which has
-        # one core, each runs when the stage that needs it asks for it (fibers.sidework), so its
-        # time counts there. Same numbers, same bytes.
+        # solved. On a cohort worker, which has one core, each runs when the stage that needs it
+        # asks for it (fibers.sidework), so its time counts there. Same numbers, same bytes.
+        order = getattr(case, "mesh_order", 1)
         with side_thread("fibers-side") as second:
             with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
                 # gmsh resets SIGTERM and SIGHUP to "kill at once"; held back while it meshes (a
@@ -120,7 +120,6 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                 with signals_blocked():
                     try:
                         boundary = mesh_stage.wall_boundary(surf, size=case.mesh_size)
-                        order = getattr(case, "mesh_order", 1)
                         # at order 2 the pools are drawn on the linear children's finer faces
                         outside = (second.submit(pool_stage.draw_outside, boundary, case.pools, box=box)
                                    if order == 1 else None)

@@ -311,6 +311,11 @@ def _owners(mesh: WallMesh) -> np.ndarray:
     return np.where(owner >= 0, candidates[owner // 4], -1)
 
 
+def _generators(settings: PoolSettings) -> dict[str, np.random.Generator]:
+    """One child generator per pool name, spawned in the fixed order of `POOL_NAMES`."""
+    return dict(zip(POOL_NAMES, np.random.default_rng(settings.seed).spawn(len(POOL_NAMES))))
+
+
 def default_box(mesh: WallMesh, margin: float) -> Box:
     """The wall's bounding box in the long-axis frame, grown by ``margin`` mm on every side."""
     local = mesh.axis.to_local(mesh.points)
@@ -382,7 +387,7 @@ def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = 
     """
     _check(settings)
     box = default_box(mesh, settings.margin) if box is None else box
-    rngs = dict(zip(POOL_NAMES, np.random.default_rng(settings.seed).spawn(len(POOL_NAMES))))
+    rngs = _generators(settings)
     drawn = {}
 
     n = int(settings.myocardium)
@@ -426,7 +431,7 @@ def draw_outside(surface, settings: PoolSettings, *, box: Box | None = None,
     """
     _check(settings)
     box = default_box(surface, settings.margin) if box is None else box
-    rngs = dict(zip(POOL_NAMES, np.random.default_rng(settings.seed).spawn(len(POOL_NAMES))))
+    rngs = _generators(settings)
     drawn = {}
     if (settings.cavity or settings.background) and not np.any(surface.face_tags == ENDO):
         raise InputError("the mesh has no endo faces, so the cavity cannot be told from the "
