@@ -491,8 +491,7 @@ def _write_tables(out: Path, subjects, rows: dict, html: bool = False) -> None:
 def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress, notify, save):
     """Build ``todo`` on Dask, filling ``rows``; returns the thread that shuts the cluster down.
 
-    The cluster closes on that thread (about 0.5 s) while the caller draws cohort.html, whose
-    plotting library is imported meanwhile too, while the client only waits for the workers.
+    The cluster closes on that thread (about 0.5 s) while the caller draws cohort.html.
     """
     from distributed import wait
 
@@ -510,8 +509,6 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
                                    key=f"fibers-build-{s.name}-{os.urandom(4).hex()}", pure=False,
                                    retries=0, priority=int(size))
             by_key[future.key] = (s, future)
-        # cohort.html's plotting library, imported while the workers build
-        threading.Thread(target=_import_drawing, name="fibers-cohort-import", daemon=True).start()
         pending = {f for _, f in by_key.values()}
         progress.running = min(slots, len(pending))
         notify(progress)
@@ -545,16 +542,6 @@ def _run_on_dask(todo, out, options, workers, memory, scheduler, rows, progress,
         for s in todo:  # a worker killed mid-build cannot remove its temporary folder
             remove_stale(out / s.name)
     return closing
-
-
-def _import_drawing() -> None:
-    try:
-        with _IMPORTING:
-            from fibers.report.drawing import pyplot
-
-            pyplot()
-    except Exception:  # only a head start: cohort.html imports it again and reports any error
-        pass
 
 
 def _row_of(future, subject: Subject) -> dict:
@@ -596,13 +583,6 @@ def _import_build_modules() -> None:
     from fibers import pipeline
 
     pipeline.import_later_stages(background=False)
-
-
-# Held while a thread of ours imports: a fork (a worker started or restarted) waits for it.
-_IMPORTING = threading.Lock()
-if hasattr(os, "register_at_fork"):
-    os.register_at_fork(before=_IMPORTING.acquire, after_in_parent=_IMPORTING.release,
-                        after_in_child=_IMPORTING.release)
 
 
 def _connect(workers, memory, scheduler):

@@ -50,7 +50,7 @@ def test_three_ok_one_failed(first):
     assert not (out / BROKEN).exists()
     assert not list(out.glob(".*partial*"))
     page = (out / "cohort.html").read_text()
-    assert 'href="subject-001/report/index.html"' in page and "data:image/png;base64," in page
+    assert 'href="subject-001/report/index.html"' in page and "<svg" in page and "<circle" in page
     assert (out / "subject-001" / "report" / "index.html").is_file()
 
 

@@ -5,26 +5,26 @@ sideways, over a box of the quartiles); a subject is an outlier on a figure when
 outside median ± 3 MAD, the MAD scaled by 1.4826 so it estimates the standard deviation of
 normal data (common practice; the factor is 1 / Phi^-1(3/4), from memory). Outliers are drawn
 in a warning colour with their names and listed with links to their own reports. The page is
-one file readable offline: the figure is embedded as a PNG data URI, no scripts.
+one file readable offline: the figure is inline SVG (`fibers.report.strips`), every dot a link
+to its subject's report, no scripts.
 """
 
 from __future__ import annotations
 
-import base64
-import io
 import os
 import uuid
 from pathlib import Path
 
 import numpy as np
 
-from fibers.report.drawing import pyplot
+from fibers.report import strips
 from fibers.report.page import CSS, _e, _num
 from fibers.report.reading import ACCENT, CAUTION, INK
 
 MAD_TO_SIGMA = 1.4826  # 1 / Phi^-1(0.75): MAD of normal data times this is sigma (from memory)
 OUTLIER_MADS = 3.0     # median +- 3 scaled MAD (common practice)
 OUTLIER_COLOUR = "#b5523b"
+COLUMNS = 4  # panels per row
 
 # column, label with unit; the order of the panels
 MAIN_FIGURES = (
@@ -78,8 +78,8 @@ def write_cohort_page(folder, rows: list[dict]) -> Path:
     built = [r for r in rows if r.get("status") in ("ok", "skipped")]
     cols = figure_columns(built)
     flags = {key: outlier_mask(cols[key]) for key, _ in MAIN_FIGURES}
-    png = _distributions_png(built, cols, flags) if built else None
-    text = _page(folder, rows, built, cols, flags, png)
+    svg = _distributions_svg(folder, built, cols, flags) if built else None
+    text = _page(folder, rows, built, cols, flags, svg)
     path = folder / "cohort.html"
     tmp = path.with_name(f".cohort.html.{uuid.uuid4().hex[:8]}")
     tmp.write_text(text, encoding="utf-8")
@@ -87,52 +87,38 @@ def write_cohort_page(folder, rows: list[dict]) -> Path:
     return path
 
 
-def _distributions_png(built, cols, flags) -> bytes:
-    plt = pyplot()
-    n = len(MAIN_FIGURES)
-    ncol = 4
-    fig, axes = plt.subplots((n + ncol - 1) // ncol, ncol, figsize=(14, 3.4 * ((n + ncol - 1) // ncol)))
+def _distributions_svg(folder: Path, built, cols, flags) -> str:
     rng = np.random.default_rng(0)  # jitter only: fixed, so the page is the same for the same table
-    names = [r["subject"] for r in built]
-    for ax, (key, label) in zip(axes.ravel(), MAIN_FIGURES):
+    panels = []
+    for index, (key, label) in enumerate(MAIN_FIGURES):
         v, bad = cols[key], flags[key]
+        dots = [strips.Dot(r["subject"], v[i], _report_href(r, folder), bool(bad[i])) for i, r in enumerate(built)]
         ok = np.isfinite(v)
-        x = rng.uniform(-0.18, 0.18, len(v))
+        band = None
         if ok.any():
-            ax.boxplot(v[ok], positions=[0], widths=0.55, showfliers=False,
-                       medianprops={"color": ACCENT}, boxprops={"color": INK}, whiskerprops={"color": INK})
             med = np.median(v[ok])
             mad = MAD_TO_SIGMA * np.median(np.abs(v[ok] - med))
-            if mad > 0:
-                ax.axhspan(med - OUTLIER_MADS * mad, med + OUTLIER_MADS * mad, color=ACCENT, alpha=0.08, lw=0)
-        ax.scatter(x[ok & ~bad], v[ok & ~bad], s=18, color=INK, alpha=0.7, zorder=3)
-        ax.scatter(x[bad], v[bad], s=30, color=OUTLIER_COLOUR, zorder=4)
-        for i in np.flatnonzero(bad):
-            ax.annotate(names[i], (x[i], v[i]), xytext=(6, 0), textcoords="offset points", fontsize=8,
-                        color=OUTLIER_COLOUR, va="center")
-        ax.set_xlim(-0.6, 0.9)
-        ax.set_xticks([])
-        ax.set_title(label)
-    for ax in axes.ravel()[n:]:
-        ax.set_axis_off()
-    fig.suptitle(f"{len(built)} built subjects: shaded band median ± {OUTLIER_MADS:g} MAD (scaled), "
-                 f"outliers in red")
-    # fixed margins: tight_layout measured every tick label first, a third of the drawing time
-    fig.subplots_adjust(left=0.045, right=0.99, top=0.89, bottom=0.03, wspace=0.28, hspace=0.22)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90)
-    plt.close(fig)
-    return buf.getvalue()
+            band = (med - OUTLIER_MADS * mad, med + OUTLIER_MADS * mad) if mad > 0 else None
+        x0, y0 = strips.grid_origin(index, COLUMNS)
+        panels.append(strips.strip_panel(x0, y0, label, dots, rng.uniform(-1, 1, len(v)), band=band, ink=INK,
+                                         accent=ACCENT, flag_colour=OUTLIER_COLOUR))
+    heading = (f"{len(built)} built subjects: shaded band median ± {OUTLIER_MADS:g} MAD (scaled), "
+               f"outliers in red")
+    return strips.panel_grid(panels, COLUMNS, heading, INK)
+
+
+def _report_href(row: dict, folder: Path) -> str | None:
+    if row.get("status") in ("ok", "skipped") and (folder / row["subject"] / "report" / "index.html").is_file():
+        return f"{row['subject']}/report/index.html"
+    return None
 
 
 def _report_link(row: dict, folder: Path) -> str:
-    name = _e(row["subject"])
-    if row.get("status") in ("ok", "skipped") and (folder / row["subject"] / "report" / "index.html").is_file():
-        return f'<a href="{name}/report/index.html">{name}</a>'
-    return name
+    href = _report_href(row, folder)
+    return f'<a href="{_e(href)}">{_e(row["subject"])}</a>' if href else _e(row["subject"])
 
 
-def _page(folder: Path, rows, built, cols, flags, png) -> str:
+def _page(folder: Path, rows, built, cols, flags, svg) -> str:
     title = folder.name
     counts = {s: sum(r.get("status") == s for r in rows) for s in ("ok", "skipped", "failed")}
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>fibers cohort: {_e(title)}"
@@ -141,11 +127,10 @@ def _page(folder: Path, rows, built, cols, flags, png) -> str:
              f"{counts['skipped']} up to date (skipped), {counts['failed']} failed. Table: "
              f"<code>cohort.csv</code>.</p>",
              f'<p class="caution">Caution. {_e(CAUTION)}</p>']
-    if png is not None:
-        data = base64.b64encode(png).decode("ascii")
-        parts.append(f'<h2>Distributions</h2><figure><img alt="distributions of the main figures" '
-                     f'src="data:image/png;base64,{data}"><figcaption>Each dot a built subject; the box spans '
-                     f'the quartiles; outside the shaded band of median ± 3 MAD (MAD scaled by 1.4826, '
+    if svg is not None:
+        parts.append(f'<h2>Distributions</h2><figure>{svg}<figcaption>Each dot a built subject (point at one '
+                     f'for its name and value, click it for its report); the box spans the quartiles, its '
+                     f'whiskers reach 1.5 interquartile ranges; outside the shaded band of median ± 3 MAD (MAD scaled by 1.4826, '
                      f'common practice) a subject is flagged.</figcaption></figure>')
     parts.append("<h2>Outliers</h2>")
     flagged = [(i, [label for key, label in MAIN_FIGURES if flags[key][i]]) for i in range(len(built))]
