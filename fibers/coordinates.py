@@ -125,7 +125,7 @@ class CardiacCoordinates:
 
 
 def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
-            tol: float = 1e-5, distances=None) -> CardiacCoordinates:
+            tol: float = 1e-5, distances=None, gradients=None) -> CardiacCoordinates:
     """Solve for the cardiac coordinates and frames of a wall mesh.
 
     Parameters
@@ -146,6 +146,9 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     distances : concurrent.futures.Future, optional
         A future of ``surface_distances(mesh)`` already running elsewhere (the pipeline runs it
         on its second thread, before the pools' points). Default: run on a thread of our own.
+    gradients : tuple of ndarray, optional
+        ``fem.tet_gradients(mesh.points, mesh.tets)`` when the caller has it (the pipeline
+        measures the mesh's quality from it). Default: computed here.
 
     Returns
     -------
@@ -173,17 +176,17 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
     with side_thread("fibers-distances") as pool:  # its thread starts only if used
         if distances is None:
             distances = pool.submit(surface_distances, mesh)
-        result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol)
+        result = _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients)
         d_endo, d_epi = distances.result()
     thickness = _fraction(d_endo, d_epi)
     return replace(result, thickness_fraction=thickness, cell_thickness_fraction=thickness[tets].mean(axis=1),
                    wall_thickness=d_endo + d_epi)
 
 
-def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol) -> CardiacCoordinates:
+def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) -> CardiacCoordinates:
     """The two Laplace solutions, the circumferential angle and the frames (nodes and cells)."""
     points, tets = mesh.points, mesh.tets
-    volumes, grads = fem.tet_gradients(points, tets)
+    volumes, grads = fem.tet_gradients(points, tets) if gradients is None else gradients
     K = fem.stiffness(points, tets, volumes=volumes, grads=grads)
 
     transmural = fem.solve_dirichlet(

@@ -410,30 +410,41 @@ def volumes_mm3(wall: WallMesh) -> tuple[float, float]:
     return float(wall.cell_volumes.sum()), float(cavity)
 
 
-def tet_quality(points: np.ndarray, tets: np.ndarray) -> dict:
-    """Quality statistics: volume, radius ratio (1 for a regular tetrahedron) and dihedral angles."""
-    # component-first (3, M) arrays: every product and sum over contiguous rows
+def tet_quality(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | None = None,
+                gradients: np.ndarray | None = None) -> dict:
+    """Quality statistics: volume, radius ratio (1 for a regular tetrahedron) and dihedral angles.
+
+    ``volumes`` (M,) signed and ``gradients`` (M, 4, 3), the barycentric gradients of
+    `fibers.fem.tet_gradients`, when the caller has them (`WallMesh.cell_volumes` and
+    `WallMesh.gradients`, which the coordinates reuse). Every measure follows from the gradients:
+    ``g_k = -n_k A_k / (3 V)`` with ``n_k`` the outward unit normal and ``A_k`` the area of the
+    face opposite vertex k, so the inradius ``3 V / sum A_k`` is ``1 / sum |g_k|``, the
+    circumradius (the circumsphere's formula, ``|sum_k |e_k|^2 (e_i x e_j)| / (12 V)`` over the
+    edges ``e_k`` from vertex 0) is ``|sum_k |e_k|^2 g_k| / 2``, and the dihedral angle at the
+    edge shared by faces i and j is ``pi - arccos(n_i . n_j)``.
+    """
+    from fibers import fem
+    from fibers.meshtools import signed_volumes
+
+    vol = signed_volumes(points, tets) if volumes is None else volumes
+    if gradients is None:
+        _, gradients = fem.tet_gradients(points, tets)
+    g = np.ascontiguousarray(gradients.transpose(1, 2, 0))   # (4, 3, M): contiguous rows
+    length = [np.sqrt(v[0] * v[0] + v[1] * v[1] + v[2] * v[2]) for v in g]
+    r_in = 1.0 / (length[0] + length[1] + length[2] + length[3])
     p = np.ascontiguousarray(np.asarray(points, float).T)
     t = np.ascontiguousarray(np.asarray(tets).T)
-    a, b, c, d = (p[:, t[k]] for k in range(4))
-    ab, ac, ad = b - a, c - a, d - a
-    # the outward-ordered faces (b, c, d), (a, d, c), (a, b, d), (a, c, b): their normals times
-    # twice their areas
-    n = [cross_columns(c - b, d - b), cross_columns(ad, ac), cross_columns(ab, ad), cross_columns(ac, ab)]
-    vol = -(n[3][0] * ad[0] + n[3][1] * ad[1] + n[3][2] * ad[2]) / 6.0   # (ab x ac) . ad / 6
-    length = [np.sqrt(v[0] * v[0] + v[1] * v[1] + v[2] * v[2]) for v in n]
-    r_in = 3 * vol / (0.5 * (length[0] + length[1] + length[2] + length[3]))
-    # circumradius from the edge lengths (formula of the tetrahedron's circumsphere):
-    # |ab|^2 (ac x ad) + |ac|^2 (ad x ab) + |ad|^2 (ab x ac), whose cross products are n1, n2, n3
-    # with their signs turned (the sign does not change the length)
-    sq = [(e * e).sum(axis=0) for e in (ab, ac, ad)]
-    s = sq[0] * n[1] + sq[1] * n[2] + sq[2] * n[3]
-    r_out = np.sqrt(s[0] * s[0] + s[1] * s[1] + s[2] * s[2]) / (12 * np.abs(vol))
+    x0 = p[:, t[0]]
+    s = np.zeros_like(x0)
+    for k in (1, 2, 3):
+        e = p[:, t[k]] - x0
+        s += (e[0] * e[0] + e[1] * e[1] + e[2] * e[2]) * g[k]
+    r_out = 0.5 * np.sqrt(s[0] * s[0] + s[1] * s[1] + s[2] * s[2])
     ratio = 3 * r_in / r_out
-    # dihedral angles from the face normals of each edge's two faces
-    unit = [v / w for v, w in zip(n, length)]
+    unit = [v / w for v, w in zip(g, length)]
     pairs = [(0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3)]
-    cosines = np.stack([(unit[i] * unit[j]).sum(axis=0) for i, j in pairs])
+    cosines = np.stack([unit[i][0] * unit[j][0] + unit[i][1] * unit[j][1] + unit[i][2] * unit[j][2]
+                        for i, j in pairs])
     # the angle grows with the cosine: the extremes come from the extreme cosines alone
     dihedral = np.degrees(np.pi - np.arccos(np.clip([cosines.min(), cosines.max()], -1, 1)))
     return {

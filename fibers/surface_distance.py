@@ -57,7 +57,7 @@ def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.
     # leaves of 32 vertices: a shallower tree, about 0.8 of the query time of scipy's 16 for
     # points a wall's thickness away (same neighbours: the nearest are exact either way)
     tree = cKDTree(np.asarray(vertices, float)[used], leafsize=32)
-    corners = np.ascontiguousarray(np.asarray(vertices, float)[triangles].transpose(1, 2, 0))  # (3, 3, T)
+    triangle_rows = _triangle_rows(np.asarray(vertices, float)[triangles].transpose(1, 2, 0))
     for first in range(0, len(points), block):
         p = points[first:first + block]
         _, near = tree.query(p, k=k)
@@ -69,30 +69,43 @@ def distance_to_surface(points: np.ndarray, vertices: np.ndarray, triangles: np.
         ring_start = np.repeat(start[near].ravel(), count.ravel())
         rank = np.arange(len(who)) - np.repeat(np.cumsum(count.ravel()) - count.ravel(), count.ravel())
         face = ring[ring_start + rank]
-        a, b, c = (corners[i][:, face] for i in range(3))        # (3, C) each
-        d = _distance(p.T[:, who], a, b, c)
+        d = _distance_from_rows(p.T[:, who], triangle_rows[:, face])
         out[first:first + block] = np.minimum.reduceat(d, np.cumsum(per_point) - per_point)
     return out
 
 
 def point_triangle_distance(p, a, b, c) -> np.ndarray:
     """Distance (K,) from points p (K, 3) to triangles (a, b, c), each (K, 3): pairwise."""
-    return _distance(*(np.asarray(x, float).T for x in (p, a, b, c)))
+    corners = np.stack([np.asarray(x, float).T for x in (a, b, c)])
+    return _distance_from_rows(np.asarray(p, float).T, _triangle_rows(corners))
 
 
-def _distance(p, a, b, c) -> np.ndarray:
-    """The distance for component-first arrays (3, ...), broadcast against each other.
+def _triangle_rows(corners: np.ndarray) -> np.ndarray:
+    """What the distance needs of each triangle, (11, T): a, ab and ac (3 rows each) and the
+    products |ab|^2, ab.ac and |ac|^2, from corners (3 corners, 3 components, T)."""
+    a, b, c = corners
+    ab, ac = b - a, c - a
+    return np.concatenate([a, ab, ac, _dot(ab, ab)[None], _dot(ab, ac)[None], _dot(ac, ac)[None]])
 
-    Component-first, the dot products are three products and two sums on contiguous rows,
-    and one ``np.select`` per barycentric coordinate replaces a chain of ``np.where``: twice
-    as fast as the row-wise form.
+
+def _dot(u, v):
+    return u[0] * v[0] + u[1] * v[1] + u[2] * v[2]
+
+
+def _distance_from_rows(p: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """The distance for component-first points p (3, C) and their triangles' rows (11, C).
+
+    Component-first, every product and sum runs on contiguous rows, and one ``np.select`` per
+    barycentric coordinate replaces a chain of ``np.where``: twice as fast as the row-wise form.
+    Of Ericson's six dot products only two need the point's own vectors: with bp = ap - ab and
+    cp = ap - ac the other four follow from the triangle's products (at 547k tetrahedra the
+    two surfaces took 0.75-0.80 s instead of 0.83-0.85 s; the same values to 4e-15 mm).
     """
-    ab, ac, ap, bp, cp = b - a, c - a, p - a, p - b, p - c
-
-    def dot(u, v):
-        return u[0] * v[0] + u[1] * v[1] + u[2] * v[2]
-
-    d1, d2, d3, d4, d5, d6 = dot(ab, ap), dot(ac, ap), dot(ab, bp), dot(ac, bp), dot(ab, cp), dot(ac, cp)
+    a, ab, ac = rows[0:3], rows[3:6], rows[6:9]
+    aa, abac, cc = rows[9], rows[10], rows[11]
+    ap = p - a
+    d1, d2 = _dot(ab, ap), _dot(ac, ap)
+    d3, d4, d5, d6 = d1 - aa, d2 - abac, d1 - abac, d2 - cc
     va, vb, vc = d3 * d6 - d5 * d4, d5 * d2 - d1 * d6, d1 * d4 - d3 * d2
     tiny = 1e-300
     e43, e56 = d4 - d3, d5 - d6
@@ -109,4 +122,4 @@ def _distance(p, a, b, c) -> np.ndarray:
     s = np.select(regions, [0.0, 1.0, d1 / np.maximum(d1 - d3, tiny), 0.0, 0.0, 1.0 - w_bc], vb / denom)
     t = np.select(regions, [0.0, 0.0, 0.0, 1.0, d2 / np.maximum(d2 - d6, tiny), w_bc], vc / denom)
     diff = ap - s * ab - t * ac
-    return np.sqrt(dot(diff, diff))
+    return np.sqrt(_dot(diff, diff))

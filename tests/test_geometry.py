@@ -183,3 +183,26 @@ def test_a_boundary_gmsh_changed_is_refused(exact_oblique):
     for dropped in (inner, outer):
         with pytest.raises(RuntimeError, match="not bounded by the fitted surfaces"):
             mesh.tagged_boundary(wall.points, np.delete(wall.tets, dropped, axis=0), tri)
+
+
+def test_tet_quality_closed_forms():
+    # Closed forms (handbook geometry of the tetrahedron): the regular one has radius ratio 1 and
+    # every dihedral angle arccos(1/3) = 70.53 deg; the right-corner one (0, e1, e2, e3) has
+    # inradius 1 / (3 + sqrt 3), circumradius sqrt(3) / 2, dihedral angles 90 deg at the three
+    # edges through the corner and arccos(1 / sqrt 3) = 54.74 deg at the other three.
+    from fibers.mesh import tet_quality
+
+    regular = np.array([[1, 1, 1], [1, -1, -1], [-1, 1, -1], [-1, -1, 1]], float)
+    corner = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], float)
+    q = tet_quality(regular, np.array([[0, 2, 1, 3]]))  # positively oriented
+    assert q["radius_ratio_min"] == pytest.approx(1.0, rel=1e-12)
+    assert q["dihedral_min_deg"] == pytest.approx(np.degrees(np.arccos(1 / 3)), rel=1e-12)
+    assert q["dihedral_max_deg"] == pytest.approx(np.degrees(np.arccos(1 / 3)), rel=1e-12)
+    assert q["volume_min_mm3"] == pytest.approx(8 / 3, rel=1e-12) and q["inverted"] == 0
+    q = tet_quality(corner, np.array([[0, 1, 2, 3]]))
+    assert q["radius_ratio_min"] == pytest.approx(3 / (3 + np.sqrt(3)) / (np.sqrt(3) / 2), rel=1e-12)
+    assert q["dihedral_min_deg"] == pytest.approx(np.degrees(np.arccos(1 / np.sqrt(3))), rel=1e-12)
+    assert q["dihedral_max_deg"] == pytest.approx(90.0, rel=1e-12)
+    assert q["volume_min_mm3"] == pytest.approx(1 / 6, rel=1e-12)
+    # an element listed in the wrong orientation counts as inverted
+    assert tet_quality(corner, np.array([[0, 2, 1, 3]]))["inverted"] == 1
