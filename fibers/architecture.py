@@ -43,6 +43,7 @@ import numpy as np
 from fibers.config import FiberLaw
 from fibers.coordinates import CardiacCoordinates
 from fibers.errors import InputError
+from fibers.sidework import side_thread
 from fibers.vectors import cross
 
 # |axis x n| between these values blends the short-axis direction into the direction about
@@ -298,8 +299,12 @@ def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = Fa
         warnings.warn("[fibers] helix_septal_offset / sheet_septal_offset need the septum, and there are no "
                       "right-ventricular insertion landmarks: the septal offsets are not applied; add [landmarks]",
                       stacklevel=2)
-    at_nodes = point_triad(nodes, law, axis=mesh.axis, septal=septal)
-    at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal, angles=False)
+    # the nodes on a second thread while the elements (five times as many) are done here: the
+    # array work releases the GIL (fibers.sidework; in turn on a cohort worker's one core)
+    with side_thread("fibers-nodes") as side:
+        node_job = side.submit(point_triad, nodes, law, axis=mesh.axis, septal=septal)
+        at_cells = point_triad(cells, law, axis=mesh.axis, septal=septal, angles=False)
+        at_nodes = node_job.result()
     return Architecture(**{k: at_nodes[k] for k in TRIAD_FIELDS},
                         cell_fiber=at_cells["fiber"], cell_sheet=at_cells["sheet"],
                         cell_sheet_normal=at_cells["sheet_normal"])
