@@ -579,7 +579,10 @@ def _import_build_modules() -> None:
 
     Done here, in this thread, and finished before any fork: a module half imported by another
     thread at the moment of a fork would stay half imported, its lock held, in the worker.
+    The cohort page's module too (0.05 s): drawn at the end, while a worker that died may be
+    forked again, it would otherwise be imported then.
     """
+    import fibers.report.cohort  # noqa: F401
     from fibers import pipeline
 
     pipeline.import_later_stages(background=False)

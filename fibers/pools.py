@@ -238,6 +238,11 @@ class EnclosedTest:
         ext = self._lo + self._shape * self._cell
         cand = np.flatnonzero((local[:, 2] < 0.0) & np.all(local[:, :2] >= self._lo, axis=1)
                               & np.all(local[:, :2] <= ext, axis=1))
+        # per face, each component its own contiguous array: every gather below is of one row
+        a_x, a_y = (np.ascontiguousarray(self._a[:, k]) for k in (0, 1))
+        u_x, u_y = (np.ascontiguousarray(self._u[:, k]) for k in (0, 1))
+        v_x, v_y = (np.ascontiguousarray(self._v[:, k]) for k in (0, 1))
+        z0, z1, z2 = (np.ascontiguousarray(self._z[:, k]) for k in (0, 1, 2))
         for start in range(0, len(cand), 65_536):
             rows = cand[start:start + 65_536]
             p = local[rows]
@@ -247,15 +252,17 @@ class EnclosedTest:
             who = np.repeat(np.arange(len(rows)), n)
             f = self._faces_by_cell[np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
                                     + np.repeat(self._start[cell], n)]
-            w = p[who, :2] - self._a[f]
+            px, py, pz = (np.ascontiguousarray(p[:, k]) for k in (0, 1, 2))
+            w_x, w_y = px[who] - a_x[f], py[who] - a_y[f]
             det = self._det[f]
-            l1 = (w[:, 0] * self._v[f, 1] - w[:, 1] * self._v[f, 0]) / det
-            l2 = (self._u[f, 0] * w[:, 1] - self._u[f, 1] * w[:, 0]) / det
+            l1 = (w_x * v_y[f] - w_y * v_x[f]) / det
+            l2 = (u_x[f] * w_y - u_y[f] * w_x) / det
             l0 = 1.0 - l1 - l2
-            hit = (l0 >= 0) & (l1 >= 0) & (l2 >= 0)
-            z_hit = l0 * self._z[f, 0] + l1 * self._z[f, 1] + l2 * self._z[f, 2]
-            below = hit & (z_hit < p[who, 2])
-            inside[rows] = np.bincount(who[below], minlength=len(rows)) % 2 == 1
+            hit = np.flatnonzero((l0 >= 0) & (l1 >= 0) & (l2 >= 0))
+            fh = f[hit]  # the height only where the ray meets the face
+            z_hit = l0[hit] * z0[fh] + l1[hit] * z1[fh] + l2[hit] * z2[fh]
+            crossing = who[hit][z_hit < pz[who[hit]]]
+            inside[rows] = np.bincount(crossing, minlength=len(rows)) % 2 == 1
         return inside
 
 
