@@ -18,7 +18,6 @@ import numpy as np
 from fibers import meshtools
 from fibers.surfaces import Surfaces
 from fibers.types import BASE, ENDO, EPI, WallMesh
-from fibers.vectors import cross_columns
 
 log = logging.getLogger(__name__)
 
@@ -415,8 +414,9 @@ def tet_quality(points: np.ndarray, tets: np.ndarray, *, volumes: np.ndarray | N
     """Quality statistics: volume, radius ratio (1 for a regular tetrahedron) and dihedral angles.
 
     ``volumes`` (M,) signed and ``gradients`` (M, 4, 3), the barycentric gradients of
-    `fibers.fem.tet_gradients`, when the caller has them (`WallMesh.cell_volumes` and
-    `WallMesh.gradients`, which the coordinates reuse). Every measure follows from the gradients:
+    `fibers.fem.tet_gradients`, when the caller has them (the pipeline passes
+    `WallMesh.cell_volumes` and the gradients the coordinates then reuse). Every measure follows
+    from the gradients:
     ``g_k = -n_k A_k / (3 V)`` with ``n_k`` the outward unit normal and ``A_k`` the area of the
     face opposite vertex k, so the inradius ``3 V / sum A_k`` is ``1 / sum |g_k|``, the
     circumradius (the circumsphere's formula, ``|sum_k |e_k|^2 (e_i x e_j)| / (12 V)`` over the

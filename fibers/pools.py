@@ -202,10 +202,13 @@ class EnclosedTest:
         self.axis = mesh.axis
         tri = mesh.faces[np.isin(mesh.face_tags, tags)]
         local = mesh.axis.to_local(mesh.points)[tri]        # (T, 3, 3): x1, x2, z
-        xy, self._z = local[:, :, :2], local[:, :, 2]
-        self._a = xy[:, 0]
-        self._u, self._v = xy[:, 1] - xy[:, 0], xy[:, 2] - xy[:, 0]
-        self._det = self._u[:, 0] * self._v[:, 1] - self._u[:, 1] * self._v[:, 0]
+        xy = local[:, :, :2]
+        a, u, v = xy[:, 0], xy[:, 1] - xy[:, 0], xy[:, 2] - xy[:, 0]
+        self._det = u[:, 0] * v[:, 1] - u[:, 1] * v[:, 0]
+        # per face, each component its own contiguous array: every gather in __call__ is of one row
+        self._a_x, self._a_y, self._u_x, self._u_y, self._v_x, self._v_y = (
+            np.ascontiguousarray(w[:, k]) for w in (a, u, v) for k in (0, 1))
+        self._z = tuple(np.ascontiguousarray(local[:, k, 2]) for k in range(3))
         scale = np.ptp(xy.reshape(-1, 2), axis=0).max() if len(tri) else 1.0
         # Faces seen edge-on from the axis cannot be crossed by an axial ray.
         keep = np.abs(self._det) > 1e-12 * scale**2
@@ -238,11 +241,8 @@ class EnclosedTest:
         ext = self._lo + self._shape * self._cell
         cand = np.flatnonzero((local[:, 2] < 0.0) & np.all(local[:, :2] >= self._lo, axis=1)
                               & np.all(local[:, :2] <= ext, axis=1))
-        # per face, each component its own contiguous array: every gather below is of one row
-        a_x, a_y = (np.ascontiguousarray(self._a[:, k]) for k in (0, 1))
-        u_x, u_y = (np.ascontiguousarray(self._u[:, k]) for k in (0, 1))
-        v_x, v_y = (np.ascontiguousarray(self._v[:, k]) for k in (0, 1))
-        z0, z1, z2 = (np.ascontiguousarray(self._z[:, k]) for k in (0, 1, 2))
+        a_x, a_y, u_x, u_y, v_x, v_y = self._a_x, self._a_y, self._u_x, self._u_y, self._v_x, self._v_y
+        z0, z1, z2 = self._z
         for start in range(0, len(cand), 65_536):
             rows = cand[start:start + 65_536]
             p = local[rows]

@@ -81,7 +81,7 @@ def point_triangle_distance(p, a, b, c) -> np.ndarray:
 
 
 def _triangle_rows(corners: np.ndarray) -> np.ndarray:
-    """What the distance needs of each triangle, (11, T): a, ab and ac (3 rows each) and the
+    """What the distance needs of each triangle, (12, T): a, ab and ac (3 rows each) and the
     products |ab|^2, ab.ac and |ac|^2, from corners (3 corners, 3 components, T)."""
     a, b, c = corners
     ab, ac = b - a, c - a
@@ -93,7 +93,7 @@ def _dot(u, v):
 
 
 def _distance_from_rows(p: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    """The distance for component-first points p (3, C) and their triangles' rows (11, C).
+    """The distance for component-first points p (3, C) and their triangles' rows (12, C).
 
     Component-first, every product and sum runs on contiguous rows, and one ``np.select`` per
     barycentric coordinate replaces a chain of ``np.where``: twice as fast as the row-wise form.

@@ -130,8 +130,8 @@ def _page(folder: Path, rows, built, cols, flags, svg) -> str:
     if svg is not None:
         parts.append(f'<h2>Distributions</h2><figure>{svg}<figcaption>Each dot a built subject (point at one '
                      f'for its name and value, click it for its report); the box spans the quartiles, its '
-                     f'whiskers reach 1.5 interquartile ranges; outside the shaded band of median ± 3 MAD (MAD scaled by 1.4826, '
-                     f'common practice) a subject is flagged.</figcaption></figure>')
+                     f'whiskers reach 1.5 interquartile ranges; outside the shaded band of median ± 3 MAD '
+                     f'(MAD scaled by 1.4826, common practice) a subject is flagged.</figcaption></figure>')
     parts.append("<h2>Outliers</h2>")
     flagged = [(i, [label for key, label in MAIN_FIGURES if flags[key][i]]) for i in range(len(built))]
     flagged = [(i, what) for i, what in flagged if what]

@@ -95,9 +95,9 @@ def strip_panel(x0: float, y0: float, title: str, dots: list[Dot], jitter: np.nd
     ticks = nice_ticks(lo, hi)
     step = float(ticks[1] - ticks[0]) if len(ticks) > 1 else 1.0
     for t in ticks:
-        out.append(f'<line x1="{left}" x2="{right}" y1="{y(t):.1f}" y2="{y(t):.1f}" stroke="#e4e0d8" '
-                   f'stroke-width="0.8"/><text x="{left - 6}" y="{y(t) + 4:.1f}" text-anchor="end" '
-                   f'font-size="11" fill="{ink}">{tick_label(t, step)}</text>')
+        out.append(_line(left, right, y(t), y(t), ' stroke="#e4e0d8" stroke-width="0.8"')
+                   + f'<text x="{left - 6}" y="{y(t) + 4:.1f}" text-anchor="end" font-size="11" '
+                   f'fill="{ink}">{tick_label(t, step)}</text>')
     if band is not None:
         b_top, b_bottom = y(min(max(band[1], lo), hi)), y(min(max(band[0], lo), hi))
         if b_bottom - b_top > 0:
@@ -105,14 +105,13 @@ def strip_panel(x0: float, y0: float, title: str, dots: list[Dot], jitter: np.nd
                        f'fill="{accent}" fill-opacity="0.09"/>')
     centre, half = left + 0.4 * (right - left), 0.16 * (right - left)
     w_low, q1, med, q3, w_high = tukey_box(values[shown])
+    cap = (centre - half / 2, centre + half / 2)
     out.append(f'<g stroke="{ink}" stroke-width="1.2" fill="none">'
-               f'<line x1="{centre:.1f}" x2="{centre:.1f}" y1="{y(w_high):.1f}" y2="{y(q3):.1f}"/>'
-               f'<line x1="{centre:.1f}" x2="{centre:.1f}" y1="{y(q1):.1f}" y2="{y(w_low):.1f}"/>'
-               f'<line x1="{centre - half / 2:.1f}" x2="{centre + half / 2:.1f}" y1="{y(w_high):.1f}" y2="{y(w_high):.1f}"/>'
-               f'<line x1="{centre - half / 2:.1f}" x2="{centre + half / 2:.1f}" y1="{y(w_low):.1f}" y2="{y(w_low):.1f}"/>'
-               f'<rect x="{centre - half:.1f}" y="{y(q3):.1f}" width="{2 * half:.1f}" height="{max(y(q1) - y(q3), 0.5):.1f}"/>'
-               f'</g><line x1="{centre - half:.1f}" x2="{centre + half:.1f}" y1="{y(med):.1f}" y2="{y(med):.1f}" '
-               f'stroke="{accent}" stroke-width="2"/>')
+               + _line(centre, centre, y(w_high), y(q3)) + _line(centre, centre, y(q1), y(w_low))
+               + _line(*cap, y(w_high), y(w_high)) + _line(*cap, y(w_low), y(w_low))
+               + f'<rect x="{centre - half:.1f}" y="{y(q3):.1f}" width="{2 * half:.1f}" '
+               f'height="{max(y(q1) - y(q3), 0.5):.1f}"/></g>'
+               + _line(centre - half, centre + half, y(med), y(med), f' stroke="{accent}" stroke-width="2"'))
     # flagged dots last, so they lie on top of the others
     for i in sorted(np.flatnonzero(shown), key=lambda i: dots[i].flagged):
         d = dots[i]
@@ -129,6 +128,10 @@ def strip_panel(x0: float, y0: float, title: str, dots: list[Dot], jitter: np.nd
         out.append(f'<text x="{centre + 1.15 * half:.1f}" y="{below:.1f}" font-size="11" fill="{flag_colour}">'
                    f'{escape(name)}</text>')
     return "\n".join(out)
+
+
+def _line(x1: float, x2: float, y1: float, y2: float, style: str = "") -> str:
+    return f'<line x1="{x1:.1f}" x2="{x2:.1f}" y1="{y1:.1f}" y2="{y2:.1f}"{style}/>'
 
 
 def panel_grid(panels: list[str], columns: int, heading: str, ink: str) -> str:
