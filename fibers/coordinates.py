@@ -189,49 +189,52 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
     volumes, grads = fem.tet_gradients(points, tets) if gradients is None else gradients
     K = fem.stiffness(points, tets, volumes=volumes, grads=grads)
 
-    transmural = fem.solve_dirichlet(
-        K, np.concatenate([endo, epi]),
-        np.concatenate([np.zeros(endo.size), np.ones(epi.size)]), tol=tol)
+    def radial():
+        """The transmural half: its solve, gradients and e_rad (nodes, cells), cell means."""
+        transmural = np.clip(fem.solve_dirichlet(  # the discrete maximum principle holds only on
+            K, np.concatenate([endo, epi]),        # non-obtuse meshes; clip the tiny overshoot
+            np.concatenate([np.zeros(endo.size), np.ones(epi.size)]), tol=tol), 0.0, 1.0)
+        g_t_cell = fem.cell_gradient(points, tets, transmural, grads=grads)
+        g_t = fem.cell_to_nodes(tets, g_t_cell, volumes, n_points=len(points))
+        radial_guess = points - mesh.axis.base_centre
+        e_rad = _unit_with_fallback(g_t, lambda rows: _normalise(radial_guess[rows], -axis_dir))
+        cell_e_rad = _unit_with_fallback(g_t_cell, lambda rows: _normalise(e_rad[tets[rows]].mean(axis=1), -axis_dir))
+        return transmural, e_rad, cell_e_rad, transmural[tets].mean(axis=1)
 
-    apex = apex_patch(mesh)
-    base_only = np.setdiff1d(base, apex)
-    apicobasal = fem.solve_dirichlet(
-        K, np.concatenate([base_only, apex]),
-        np.concatenate([np.ones(base_only.size), np.zeros(apex.size)]), tol=tol)
-    # The discrete maximum principle holds only on non-obtuse meshes; clip the tiny overshoot.
-    transmural = np.clip(transmural, 0.0, 1.0)
-    apicobasal = np.clip(apicobasal, 0.0, 1.0)
-    depth = (mesh.axis.base_centre - points) @ axis_dir
-    position = even_along_axis(apicobasal, depth, apex)
+    # The two halves need each other only for e_long, which is orthogonal to e_rad: the
+    # transmural half runs on a second thread while this one solves the apicobasal problem
+    # (in turn on a cohort worker, fibers.sidework). The same bytes either way.
+    with side_thread("fibers-transmural") as side:
+        transmural_half = side.submit(radial)
+        apex = apex_patch(mesh)
+        base_only = np.setdiff1d(base, apex)
+        apicobasal = np.clip(fem.solve_dirichlet(
+            K, np.concatenate([base_only, apex]),
+            np.concatenate([np.ones(base_only.size), np.zeros(apex.size)]), tol=tol), 0.0, 1.0)
+        depth = (mesh.axis.base_centre - points) @ axis_dir
+        position = even_along_axis(apicobasal, depth, apex)
+        circumferential = angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
+        g_a_cell = fem.cell_gradient(points, tets, apicobasal, grads=grads)
+        g_a = fem.cell_to_nodes(tets, g_a_cell, volumes, n_points=len(points))
+        scale = float(np.median(_row_norm(g_a)))
+        centroids = mesh.cell_centroids
+        cell_apicobasal = position[tets].mean(axis=1)
+        cell_circumferential = angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero)
+        quality, cell_quality = frame_quality(points, mesh.axis), frame_quality(centroids, mesh.axis)
+        transmural, e_rad, cell_e_rad, cell_transmural = transmural_half.result()
 
-    circumferential = angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
-
-    g_t_cell = fem.cell_gradient(points, tets, transmural, grads=grads)
-    g_a_cell = fem.cell_gradient(points, tets, apicobasal, grads=grads)
-    g_t = fem.cell_to_nodes(tets, g_t_cell, volumes, n_points=len(points))
-    g_a = fem.cell_to_nodes(tets, g_a_cell, volumes, n_points=len(points))
-
-    radial_guess = points - mesh.axis.base_centre
-    e_rad = _unit_with_fallback(g_t, lambda rows: _normalise(radial_guess[rows], -axis_dir))
     e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
     e_circ = cross(e_long, e_rad)
-
-    cell_e_rad = _unit_with_fallback(g_t_cell, lambda rows: _normalise(e_rad[tets[rows]].mean(axis=1), -axis_dir))
-    cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero,
-                                scale=float(np.median(_row_norm(g_a))))
+    cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero, scale=scale)
     cell_e_circ = cross(cell_e_long, cell_e_rad)
 
-    centroids = mesh.cell_centroids
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
         e_rad=e_rad, e_long=e_long, e_circ=e_circ,
         cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
-        cell_transmural=transmural[tets].mean(axis=1),
-        cell_apicobasal=position[tets].mean(axis=1),
-        cell_circumferential=angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
-        frame_quality=frame_quality(points, mesh.axis),
-        cell_frame_quality=frame_quality(centroids, mesh.axis))
+        cell_transmural=cell_transmural, cell_apicobasal=cell_apicobasal,
+        cell_circumferential=cell_circumferential, frame_quality=quality, cell_frame_quality=cell_quality)
 
 
 # Below this distance (mm) from the long axis the frame of the apical cap is unreliable: the
@@ -240,7 +243,8 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
 FRAME_QUALITY_THRESHOLD_MM = 3.5
 
 
-def surface_distances(mesh: WallMesh, points: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+def surface_distances(mesh: WallMesh, points: np.ndarray | None = None, *,
+                      known: BoundaryDistances | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Exact distances (K,), (K,) mm from points to the endocardial and the epicardial faces.
 
     Parameters
@@ -248,26 +252,91 @@ def surface_distances(mesh: WallMesh, points: np.ndarray | None = None) -> tuple
     mesh : WallMesh
     points : ndarray (K, 3), mm, optional
         Default: the mesh nodes, whose distance to their own surface is set to exactly 0.
+    known : BoundaryDistances, optional
+        From `boundary_distances` of the boundary the mesh was filled in: its nodes' distances
+        and its surfaces' search structures are taken from there, and only the nodes gmsh added
+        are searched. Ignored (everything is searched) unless the mesh knows where that
+        boundary's nodes are (``mesh.boundary_nodes``).
 
     Returns
     -------
     d_endo, d_epi : ndarray (K,), mm
     """
-    from fibers.surface_distance import distance_to_surface
+    from fibers.surface_distance import TriangleSurface
 
     if points is not None:
         points = np.asarray(points, float).reshape(-1, 3)
-        return tuple(distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == tag])
+        return tuple(TriangleSurface(mesh.points, mesh.faces[mesh.face_tags == tag]).distance(points)
                      for tag in (ENDO, EPI))
-    out = []
+    rows = None if known is None else known.rows_in(mesh)
+    if rows is not None:
+        rest = np.ones(len(mesh.points), bool)
+        rest[rows] = False
+        out = []
+        for near, surface in zip(known.near, known.surfaces):
+            d = np.empty(len(mesh.points))
+            d[rows] = near
+            d[rest] = surface.distance(mesh.points[rest])
+            out.append(d)
+        return tuple(out)
+    return _node_distances(mesh.points, {tag: mesh.faces[mesh.face_tags == tag] for tag in (ENDO, EPI)})[1]
+
+
+@dataclass(frozen=True)
+class BoundaryDistances:
+    """What the distances to the two surfaces take from the wall's boundary alone.
+
+    Attributes
+    ----------
+    points : ndarray (P, 3), mm
+        The boundary's nodes.
+    surfaces : tuple of TriangleSurface
+        The endocardium and the epicardium, ready for queries.
+    near : tuple of ndarray (P,), mm
+        The nodes' distances to each (0 on the surface itself).
+    """
+
+    points: np.ndarray
+    surfaces: tuple
+    near: tuple
+
+    def rows_in(self, mesh: WallMesh) -> np.ndarray | None:
+        """The rows of these nodes in ``mesh`` (``mesh.boundary_nodes``), None if it has none.
+
+        Its endocardial and epicardial faces are then this boundary's triangles: the mesh stage
+        checks that gmsh kept every triangle it was given (`fibers.mesh.tagged_boundary`).
+        """
+        rows = mesh.boundary_nodes
+        if rows is None or len(rows) != len(self.points) or len(mesh.points) < len(rows):
+            return None
+        return rows
+
+
+def boundary_distances(boundary) -> BoundaryDistances:
+    """The distances of a boundary's nodes (a `fibers.mesh.Boundary`) to its two surfaces.
+
+    The pipeline runs this while gmsh fills the volume (a fifth of the nodes are on the
+    boundary) and hands it to `surface_distances` as ``known``.
+    """
+    surfaces, near = _node_distances(boundary.points, {tag: boundary.tri[tag] for tag in (ENDO, EPI)})
+    return BoundaryDistances(points=boundary.points, surfaces=surfaces, near=near)
+
+
+def _node_distances(points: np.ndarray, triangles: dict) -> tuple[tuple, tuple]:
+    """Each surface's `TriangleSurface` and every node's distance to it, 0 on its own nodes."""
+    from fibers.surface_distance import TriangleSurface
+
+    surfaces, out = [], []
     for tag in (ENDO, EPI):
+        surface = TriangleSurface(points, triangles[tag])
         # nodes of a surface lie on it: exactly 0 there (as for the Laplace depth), not searched
-        d = np.zeros(len(mesh.points))
-        off = np.ones(len(mesh.points), bool)
-        off[mesh.face_nodes(tag)] = False
-        d[off] = distance_to_surface(mesh.points[off], mesh.points, mesh.faces[mesh.face_tags == tag])
+        d = np.zeros(len(points))
+        off = np.ones(len(points), bool)
+        off[triangles[tag].ravel()] = False
+        d[off] = surface.distance(points[off])
+        surfaces.append(surface)
         out.append(d)
-    return tuple(out)
+    return tuple(surfaces), tuple(out)
 
 
 def _fraction(d_endo: np.ndarray, d_epi: np.ndarray) -> np.ndarray:

@@ -9,6 +9,7 @@ gradients preconditioned with algebraic multigrid (pyamg), ``cell_gradient`` and
 from __future__ import annotations
 
 import logging
+import threading
 
 import numpy as np
 import scipy.sparse as sp
@@ -137,15 +138,8 @@ def _amg_vcycle(A: sp.csr_matrix):
     # pyamg draws its candidate vectors' improvement from numpy's global generator; seed it for
     # the setup only (and restore the caller's state) so the same input gives the same
     # preconditioner, hence the same solution bytes, on every run.
-    state = np.random.get_state()
-    try:
-        np.random.seed(0)
-        ml = pyamg.smoothed_aggregation_solver(A, symmetry="symmetric", max_coarse=2000, smooth=None,
-                                               coarse_solver="splu",  # sparse: no dense 2000 x 2000 inverse
-                                               presmoother=("gauss_seidel", {"sweep": "forward"}),
-                                               postsmoother=("gauss_seidel", {"sweep": "backward"}))
-    finally:
-        np.random.set_state(state)
+    with _SEEDED:  # two solves may be set up at once (fibers.coordinates); one at a time here
+        ml = _seeded_setup(pyamg, A)
     levels = ml.levels
     if len(levels) == 1:
         return lambda r: ml.coarse_solver(levels[0].A, r)
@@ -164,6 +158,23 @@ def _amg_vcycle(A: sp.csr_matrix):
         return x
 
     return lambda r: cycle(0, r)
+
+
+_SEEDED = threading.Lock()
+
+
+def _seeded_setup(pyamg, A):
+    """pyamg's aggregation hierarchy of A, drawn with numpy's global generator seeded (the
+    caller's state restored after)."""
+    state = np.random.get_state()
+    try:
+        np.random.seed(0)
+        return pyamg.smoothed_aggregation_solver(A, symmetry="symmetric", max_coarse=2000, smooth=None,
+                                                 coarse_solver="splu",  # sparse: no dense 2000 x 2000 inverse
+                                                 presmoother=("gauss_seidel", {"sweep": "forward"}),
+                                                 postsmoother=("gauss_seidel", {"sweep": "backward"}))
+    finally:
+        np.random.set_state(state)
 
 
 def _dot(u: np.ndarray, v: np.ndarray) -> float:

@@ -145,7 +145,29 @@ def fill_wall(surfaces: Surfaces, boundary: Boundary, *, size: float = 1.5, thre
     tets, faces, face_tags = tagged_boundary(points_world, tets, tri)
     return WallMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                     endo_apex=surfaces.apex("endo"), epi_apex=surfaces.apex("epi"),
-                    quality=tet_quality(points_world, tets) if quality else {})
+                    quality=tet_quality(points_world, tets) if quality else {},
+                    boundary_nodes=boundary_rows(boundary, points, tri))
+
+
+def boundary_rows(boundary: Boundary, points: np.ndarray, tri: dict) -> np.ndarray | None:
+    """Row (P,) in the volume mesh of each boundary node, or None if it cannot be told for sure.
+
+    gmsh renumbers the nodes but keeps each surface's triangles in the order given, so the k-th
+    triangle of a tag is ours in its numbering (``tri``, from `fill_volume`). Taken only if
+    that gives every node one row, at exactly our position (``points`` in the long-axis frame).
+    """
+    rows = np.full(len(boundary.local), -1, dtype=np.int64)
+    for tag, ours in boundary.tri.items():
+        theirs = tri.get(tag)
+        if theirs is None or theirs.shape != ours.shape:
+            return None
+        seen = rows[ours]
+        if np.any((seen >= 0) & (seen != theirs)):
+            return None
+        rows[ours] = theirs
+    if np.any(rows < 0) or not np.array_equal(points[rows], boundary.local):
+        return None
+    return rows
 
 
 def surface_rings(surfaces: Surfaces, name: str, size: float) -> list[tuple[np.ndarray, np.ndarray]]:

@@ -106,7 +106,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # What needs the mesh alone runs on a second thread beside the main line (numpy's array
         # work, the k-d queries and gmsh's calls release the GIL): the cavity and background
         # pools need only the boundary we triangulate, so they are drawn while gmsh fills the
-        # volume; then the distances to the two surfaces (the coordinates wait for them) and the
+        # volume, and the boundary nodes' distances to the two surfaces found; then the other
+        # nodes' distances (the coordinates wait for them) and the
         # other pools' points (only their fields wait for the coordinates), begun while the mesh's
         # quality is measured, and the elements' segment labels, while the Laplace problems are
         # solved. On a cohort worker, which has one core, each runs when the stage that needs it
@@ -123,6 +124,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                         # at order 2 the pools are drawn on the linear children's finer faces
                         outside = (second.submit(pool_stage.draw_outside, boundary, case.pools, box=box)
                                    if order == 1 else None)
+                        # the boundary nodes' distances to the two surfaces, a fifth of the search
+                        near = second.submit(coordinates.boundary_distances, boundary) if order == 1 else None
                         wall = mesh_stage.fill_wall(surf, boundary, size=case.mesh_size, quality=False)
                     finally:
                         rearm_signals()
@@ -132,7 +135,8 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                     wall.quality.update(mesh_stage.tet_quality(wall.points, wall.tets))
                     quad = quadratic.elevate(wall, surf)
                     wall = quad.linear
-                distances = second.submit(coordinates.surface_distances, wall)
+                distances = second.submit(lambda: coordinates.surface_distances(
+                    wall, known=None if near is None else near.result()))
                 drawn = second.submit(lambda: pool_stage.draw_positions(
                     wall, case.pools, box=box, outside=None if outside is None else outside.result()))
                 # the elements' gradients, of which the quality's measures and the Laplace matrix

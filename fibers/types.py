@@ -122,6 +122,9 @@ class WallMesh:
         cavity and the apex of the wall.
     quality : dict
         Mesh-quality statistics (name -> value).
+    boundary_nodes : ndarray (P,) int, optional
+        For a mesh filled in a `fibers.mesh.Boundary`: the row in ``points`` of each of the
+        boundary's nodes (gmsh renumbers them). None otherwise (a mesh read from files, say).
     """
 
     points: np.ndarray
@@ -132,6 +135,7 @@ class WallMesh:
     endo_apex: np.ndarray
     epi_apex: np.ndarray
     quality: dict = field(default_factory=dict)
+    boundary_nodes: np.ndarray | None = None
 
     @cached_property
     def cell_volumes(self) -> np.ndarray:

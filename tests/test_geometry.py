@@ -153,6 +153,32 @@ def test_boundary_is_the_finished_meshs_boundary(exact_oblique):
                 assert np.array_equal(ours[name][key], value), (sampler, name, key)
 
 
+def test_boundary_nodes_and_their_distances_carry_over_to_the_filled_mesh(exact_oblique):
+    # gmsh renumbers the nodes; the mesh records where each of ours went (its position is the
+    # same), and the distances found on the boundary before the fill are the full search's
+    # (to rounding: the boundary's world positions are computed from the same local ones)
+    from fibers import coordinates
+
+    _, _, (_, sf, wall) = exact_oblique
+    boundary = mesh.wall_boundary(sf, size=SIZE)
+    rows = wall.boundary_nodes
+    assert rows is not None and len(np.unique(rows)) == len(boundary.points)
+    np.testing.assert_allclose(wall.points[rows], boundary.points, rtol=0, atol=1e-12)
+    known = coordinates.boundary_distances(boundary)
+    assert known.rows_in(wall) is rows
+    for ours, full in zip(coordinates.surface_distances(wall, known=known), coordinates.surface_distances(wall)):
+        np.testing.assert_allclose(ours, full, rtol=0, atol=1e-12)
+    for tag, d in zip((ENDO, EPI), coordinates.surface_distances(wall, known=known)):
+        assert np.all(d[wall.face_nodes(tag)] == 0.0) and np.all(d[np.setdiff1d(np.arange(len(d)), wall.face_nodes(tag))] > 0)
+    # a mesh that does not know its boundary's nodes (read from files, say) is searched in full
+    from dataclasses import replace
+
+    alone = replace(wall, boundary_nodes=None)
+    assert known.rows_in(alone) is None
+    for ours, full in zip(coordinates.surface_distances(alone, known=known), coordinates.surface_distances(wall)):
+        assert np.array_equal(ours, full)
+
+
 def test_boundary_search_near_our_nodes_finds_every_face(exact_oblique):
     # the faces found near our triangles' nodes are the full search's, row for row
     from fibers import meshtools
