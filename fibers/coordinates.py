@@ -262,11 +262,11 @@ def surface_distances(mesh: WallMesh, points: np.ndarray | None = None, *,
     -------
     d_endo, d_epi : ndarray (K,), mm
     """
-    from fibers.surface_distance import TriangleSurface
+    from fibers.surface_distance import distance_to_surface
 
     if points is not None:
         points = np.asarray(points, float).reshape(-1, 3)
-        return tuple(TriangleSurface(mesh.points, mesh.faces[mesh.face_tags == tag]).distance(points)
+        return tuple(distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == tag])
                      for tag in (ENDO, EPI))
     rows = None if known is None else known.rows_in(mesh)
     if rows is not None:
@@ -288,15 +288,12 @@ class BoundaryDistances:
 
     Attributes
     ----------
-    points : ndarray (P, 3), mm
-        The boundary's nodes.
     surfaces : tuple of TriangleSurface
         The endocardium and the epicardium, ready for queries.
     near : tuple of ndarray (P,), mm
-        The nodes' distances to each (0 on the surface itself).
+        The boundary nodes' distances to each (0 on the surface itself).
     """
 
-    points: np.ndarray
     surfaces: tuple
     near: tuple
 
@@ -307,9 +304,7 @@ class BoundaryDistances:
         checks that gmsh kept every triangle it was given (`fibers.mesh.tagged_boundary`).
         """
         rows = mesh.boundary_nodes
-        if rows is None or len(rows) != len(self.points) or len(mesh.points) < len(rows):
-            return None
-        return rows
+        return None if rows is None or len(rows) != len(self.near[0]) else rows
 
 
 def boundary_distances(boundary) -> BoundaryDistances:
@@ -319,7 +314,7 @@ def boundary_distances(boundary) -> BoundaryDistances:
     boundary) and hands it to `surface_distances` as ``known``.
     """
     surfaces, near = _node_distances(boundary.points, {tag: boundary.tri[tag] for tag in (ENDO, EPI)})
-    return BoundaryDistances(points=boundary.points, surfaces=surfaces, near=near)
+    return BoundaryDistances(surfaces=surfaces, near=near)
 
 
 def _node_distances(points: np.ndarray, triangles: dict) -> tuple[tuple, tuple]:

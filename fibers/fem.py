@@ -133,13 +133,11 @@ def _amg_vcycle(A: sp.csr_matrix):
     aggregation and symmetric sweeps: CG needs 13 and 25 iterations instead of 8 and 12 (to 1e-6), but
     each is cheaper and the set-up six times so (the demo ventricle, best of 3 in one run).
     """
-    import pyamg
-
     # pyamg draws its candidate vectors' improvement from numpy's global generator; seed it for
     # the setup only (and restore the caller's state) so the same input gives the same
     # preconditioner, hence the same solution bytes, on every run.
     with _SEEDED:  # two solves may be set up at once (fibers.coordinates); one at a time here
-        ml = _seeded_setup(pyamg, A)
+        ml = _seeded_setup(A)
     levels = ml.levels
     if len(levels) == 1:
         return lambda r: ml.coarse_solver(levels[0].A, r)
@@ -163,9 +161,11 @@ def _amg_vcycle(A: sp.csr_matrix):
 _SEEDED = threading.Lock()
 
 
-def _seeded_setup(pyamg, A):
+def _seeded_setup(A):
     """pyamg's aggregation hierarchy of A, drawn with numpy's global generator seeded (the
     caller's state restored after)."""
+    import pyamg
+
     state = np.random.get_state()
     try:
         np.random.seed(0)
