@@ -44,7 +44,7 @@ from fibers.config import FiberLaw
 from fibers.coordinates import CardiacCoordinates
 from fibers.errors import InputError
 from fibers.sidework import side_thread
-from fibers.vectors import cross
+from fibers.vectors import columns, cross_columns, dot_columns, norm_columns, rows
 
 # |axis x n| between these values blends the short-axis direction into the direction about
 # the axis at the point (sin 11.5 and sin 30 degrees).
@@ -176,8 +176,9 @@ def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False, angl
     if missing:
         raise InputError(f"point_triad: fields {', '.join(missing)} are missing; pass them "
                          "interpolated at the points")
+    # component-first (3, K) from here on: every product runs over contiguous memory
     n, e_long, e_circ = _orthonormal_frame(fields["e_rad"], fields["e_long"], fields["e_circ"])
-    k = len(n)
+    k = n.shape[1]
     depth = np.asarray(fields[need[4]], float)
     if depth.shape != (k,):
         raise InputError(f"point_triad: depth has {depth.size} values for {k} frames; "
@@ -188,16 +189,16 @@ def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False, angl
     b = sheet_angle(law, depth, apicobasal=position, septal_weight=weight)
     i = imbrication_angle(law, depth)
     if angles or law.helix_frame == "short_axis":
-        c_sax, l_sax = short_axis_frame(n, fields["points"], axis, fallback=e_circ)
+        c_sax, l_sax = _short_axis_columns(n, columns(fields["points"]), axis, e_circ)
     c, l = (c_sax, l_sax) if law.helix_frame == "short_axis" else (e_circ, e_long)
-    fiber, sheet, normal = triad_from_angles(n, c, l, a, i, b)
+    fiber, sheet, normal = _triad_columns(n, c, l, a, i, b)
+    triad = {"fiber": rows(fiber), "sheet": rows(sheet), "sheet_normal": rows(normal)}
     if not angles:
-        return {"fiber": fiber, "sheet": sheet, "sheet_normal": normal}
-    dot = lambda u, v: np.einsum("ij,ij->i", u, v)  # noqa: E731
-    return {"fiber": fiber, "sheet": sheet, "sheet_normal": normal,
-            "helix_angle": np.degrees(np.arctan2(dot(fiber, e_long), dot(fiber, e_circ))),
-            "helix_angle_sax": np.degrees(np.arctan2(dot(fiber, l_sax), dot(fiber, c_sax))),
-            "imbrication_angle": np.degrees(np.arcsin(np.clip(dot(fiber, n), -1.0, 1.0))),
+        return triad
+    return {**triad,
+            "helix_angle": np.degrees(np.arctan2(dot_columns(fiber, e_long), dot_columns(fiber, e_circ))),
+            "helix_angle_sax": np.degrees(np.arctan2(dot_columns(fiber, l_sax), dot_columns(fiber, c_sax))),
+            "imbrication_angle": np.degrees(np.arcsin(np.clip(dot_columns(fiber, n), -1.0, 1.0))),
             "sheet_angle": np.asarray(b, float), "dispersion": dispersion(law, depth)}
 
 
@@ -219,38 +220,50 @@ def short_axis_frame(normal, points, axis, *, fallback) -> tuple[np.ndarray, np.
         ``c`` the short-axis circumferential direction (step 3 of the module docstring),
         ``l = normal x c``.
     """
+    c, l = _short_axis_columns(columns(normal), columns(points), axis, columns(fallback))
+    return rows(c), rows(l)
+
+
+def _short_axis_columns(normal, points, axis, fallback):
+    """`short_axis_frame` on component-first arrays (3, K)."""
     d = np.asarray(axis.direction, float)
     d = d / np.linalg.norm(d)
-    sax = cross(d, normal)
-    s = _rows(sax)
-    about = cross(d, np.asarray(points, float).reshape(-1, 3) - axis.base_centre)
-    about -= np.einsum("ij,ij->i", about, normal)[:, None] * normal
+    sax = cross_columns(d, normal)
+    s = norm_columns(sax)
+    about = cross_columns(d, points - np.asarray(axis.base_centre, float)[:, None])
+    about -= dot_columns(about, normal) * normal
     about = _unit_or(about, fallback)
     t = np.clip((s - _SAX_LOW) / (_SAX_HIGH - _SAX_LOW), 0.0, 1.0)
-    w = (t * t * (3.0 - 2.0 * t))[:, None]
-    c = w * sax / np.maximum(s, 1e-300)[:, None] + (1.0 - w) * about
+    w = t * t * (3.0 - 2.0 * t)
+    c = w * sax / np.maximum(s, 1e-300) + (1.0 - w) * about
     # the two agree in sense (both turn right-handedly about the axis), so the blend only
     # cancels if the wall normal tilts toward the axis; keep the heavier one there
-    weak = _rows(c) < 0.25
+    weak = norm_columns(c) < 0.25
     if np.any(weak):
-        c[weak] = np.where(w[weak] >= 0.5, sax[weak] / np.maximum(s[weak], 1e-300)[:, None],
-                           about[weak])
+        c[:, weak] = np.where(w[weak] >= 0.5, sax[:, weak] / np.maximum(s[weak], 1e-300), about[:, weak])
     c = _unit_or(c, fallback)
-    return c, cross(normal, c)
+    return c, cross_columns(normal, c)
 
 
 def triad_from_angles(normal, circ, long, helix_deg, imbrication_deg, sheet_deg):
     """Fiber, sheet and sheet-normal (K, 3) from a frame (unit rows, ``long = normal x circ``)."""
-    a = np.radians(np.asarray(helix_deg, float))[:, None]
-    i = np.radians(np.asarray(imbrication_deg, float))[:, None]
-    b = np.radians(np.asarray(sheet_deg, float))[:, None]
+    triad = _triad_columns(columns(normal), columns(circ), columns(long), helix_deg, imbrication_deg, sheet_deg)
+    return tuple(rows(v) for v in triad)
+
+
+def _triad_columns(normal, circ, long, helix_deg, imbrication_deg, sheet_deg):
+    """`triad_from_angles` on component-first arrays (3, K)."""
+    a = np.radians(np.asarray(helix_deg, float))
+    i = np.radians(np.asarray(imbrication_deg, float))
+    b = np.radians(np.asarray(sheet_deg, float))
+    cos_i, sin_i = np.cos(i), np.sin(i)
     in_plane = np.cos(a) * circ + np.sin(a) * long
-    fiber = np.cos(i) * in_plane + np.sin(i) * normal
+    fiber = cos_i * in_plane + sin_i * normal
     # s0: the unit part of the normal orthogonal to the fiber, exactly, without a division
-    s0 = np.cos(i) * normal - np.sin(i) * in_plane
+    s0 = cos_i * normal - sin_i * in_plane
     # Rodrigues' rotation of s0 about the fiber; s0 is orthogonal to it.
-    sheet = np.cos(b) * s0 + np.sin(b) * cross(fiber, s0)
-    return fiber, sheet, cross(fiber, sheet)
+    sheet = np.cos(b) * s0 + np.sin(b) * cross_columns(fiber, s0)
+    return fiber, sheet, cross_columns(fiber, sheet)
 
 
 def orient(e_rad, e_long, e_circ, depth, law: FiberLaw):
@@ -261,12 +274,12 @@ def orient(e_rad, e_long, e_circ, depth, law: FiberLaw):
     """
     n, e_long, e_circ = _orthonormal_frame(e_rad, e_long, e_circ)
     a = helix_angle(law, depth)
-    if a.shape != (len(n),):
-        raise InputError(f"orient: depth has {a.size} values for {len(n)} frames; "
+    if a.shape != (n.shape[1],):
+        raise InputError(f"orient: depth has {a.size} values for {n.shape[1]} frames; "
                          "pass one depth per frame")
     b = sheet_angle(law, depth)
-    fiber, sheet, normal = triad_from_angles(n, e_circ, e_long, a, imbrication_angle(law, depth), b)
-    return fiber, sheet, normal, a, b
+    fiber, sheet, normal = _triad_columns(n, e_circ, e_long, a, imbrication_angle(law, depth), b)
+    return rows(fiber), rows(sheet), rows(normal), a, b
 
 
 def assign(coords: CardiacCoordinates, law: FiberLaw, mesh, *, septal: bool = False) -> Architecture:
@@ -328,16 +341,13 @@ def _angle(depth, endo, epi, profile, profile_name, position, offsets, offsets_n
     return angle
 
 
-def _rows(v):
-    return np.sqrt(np.einsum("ij,ij->i", v, v))
-
-
 def _unit_or(v, fallback):
-    norm = _rows(v)
+    """Unit columns of ``v`` (3, K); those shorter than 1e-9 taken from ``fallback`` (3, K)."""
+    norm = norm_columns(v)
     ok = norm > 1e-9
-    out = v / np.where(ok, norm, 1.0)[:, None]
+    out = v / np.where(ok, norm, 1.0)
     if not np.all(ok):
-        out[~ok] = fallback[~ok]
+        out[:, ~ok] = fallback[:, ~ok]
     return out
 
 
@@ -375,7 +385,10 @@ def _profile_table(profile, name: str = "helix_profile", what: str = "depth") ->
 
 
 def _orthonormal_frame(e_rad, e_long, e_circ):
-    """Gram-Schmidt on (e_rad, e_long), e_circ = e_long x e_rad, with fallbacks on degeneracy."""
+    """Gram-Schmidt on (e_rad, e_long), e_circ = e_long x e_rad, with fallbacks on degeneracy.
+
+    Takes rows (K, 3), returns the three component-first (3, K).
+    """
     arrays = [np.asarray(v, dtype=float) for v in (e_rad, e_long, e_circ)]
     shape = arrays[0].shape
     if len(shape) != 2 or shape[1] != 3 or any(v.shape != shape for v in arrays):
@@ -384,34 +397,34 @@ def _orthonormal_frame(e_rad, e_long, e_circ):
     if not all(np.all(np.isfinite(v)) for v in arrays):
         raise InputError("orient: the frame contains NaN or infinite values; recompute the "
                          "cardiac coordinates")
-    r, lg, c = arrays
+    r, lg, c = (columns(v) for v in arrays)
     # The fallbacks are computed only for the rows that need them (almost never).
     # e_rad = e_circ x e_long in a right-handed frame; use it where the given e_rad is zero.
-    r = _unit_rows(r, lambda rows: cross(c[rows], lg[rows]))
-    lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
+    r = _unit_columns(r, lambda k: cross_columns(c[:, k], lg[:, k]))
+    lg = lg - dot_columns(lg, r) * r
     # e_long = e_rad x e_circ; use it where the given e_long is parallel to e_rad.
-    lg = _unit_rows(lg, lambda rows: cross(r[rows], c[rows]))
-    lg = lg - np.einsum("ij,ij->i", lg, r)[:, None] * r
-    lg = _unit_rows(lg, lambda rows: _any_orthogonal(r[rows]))
-    return r, lg, cross(lg, r)
+    lg = _unit_columns(lg, lambda k: cross_columns(r[:, k], c[:, k]))
+    lg = lg - dot_columns(lg, r) * r
+    lg = _unit_columns(lg, lambda k: _any_orthogonal(r[:, k]))
+    return r, lg, cross_columns(lg, r)
 
 
-def _unit_rows(v, fallback):
-    """Unit rows of ``v``; rows shorter than 1e-9 taken from ``fallback(rows)`` (then any unit)."""
-    norm = np.sqrt(np.einsum("ij,ij->i", v, v))
+def _unit_columns(v, fallback):
+    """Unit columns of ``v`` (3, K); those shorter than 1e-9 taken from ``fallback(k)`` (then any unit)."""
+    norm = norm_columns(v)
     bad = norm < 1e-9
     if np.any(bad):
         v = v.copy()
-        v[bad] = fallback(np.flatnonzero(bad))
-        norm = np.linalg.norm(v, axis=1)
+        v[:, bad] = fallback(np.flatnonzero(bad))
+        norm = np.linalg.norm(v, axis=0)
         still = norm < 1e-9
-        v[still] = [1.0, 0.0, 0.0]
+        v[:, still] = [[1.0], [0.0], [0.0]]
         norm[still] = 1.0
-    return v / norm[:, None]
+    return v / norm
 
 
 def _any_orthogonal(r):
-    """A unit vector orthogonal to each unit row of ``r``."""
-    pick = np.where((np.abs(r[:, 0]) < 0.9)[:, None], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0])
-    v = cross(r, pick)
-    return v / np.linalg.norm(v, axis=1)[:, None]
+    """A unit vector orthogonal to each unit column of ``r`` (3, K)."""
+    pick = np.where(np.abs(r[0]) < 0.9, [[1.0], [0.0], [0.0]], [[0.0], [1.0], [0.0]])
+    v = cross_columns(r, pick)
+    return v / np.linalg.norm(v, axis=0)
