@@ -62,7 +62,7 @@ from fibers import fem
 from fibers.errors import InputError
 from fibers.sidework import side_thread
 from fibers.types import BASE, ENDO, EPI, WallMesh
-from fibers.vectors import cross
+from fibers.vectors import columns, cross, cross_columns, dot_columns, norm_columns, rows
 
 log = logging.getLogger(__name__)
 
@@ -189,17 +189,27 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
     volumes, grads = fem.tet_gradients(points, tets) if gradients is None else gradients
     K = fem.stiffness(points, tets, volumes=volumes, grads=grads)
 
+    # component-first (3, K) from here (each element's k-th vertex, the gradients (4, 3, M)):
+    # every product and sum over the 547k elements runs on contiguous memory; the same sums in
+    # the same order as the row-wise forms, so the same bits
+    corners = np.ascontiguousarray(np.asarray(tets, dtype=np.intp).T)
+    shape_grads = np.ascontiguousarray(grads.transpose(1, 2, 0))  # no copy from fem.tet_gradients
+
+    def to_nodes(cell_columns):
+        return columns(fem.cell_to_nodes(tets, cell_columns.T, volumes, n_points=len(points)))
+
     def radial():
         """The transmural half: its solve, gradients and e_rad (nodes, cells), cell means."""
         transmural = np.clip(fem.solve_dirichlet(  # the discrete maximum principle holds only on
             K, np.concatenate([endo, epi]),        # non-obtuse meshes; clip the tiny overshoot
             np.concatenate([np.zeros(endo.size), np.ones(epi.size)]), tol=tol), 0.0, 1.0)
-        g_t_cell = fem.cell_gradient(points, tets, transmural, grads=grads)
-        g_t = fem.cell_to_nodes(tets, g_t_cell, volumes, n_points=len(points))
-        radial_guess = points - mesh.axis.base_centre
-        e_rad = _unit_with_fallback(g_t, lambda rows: _normalise(radial_guess[rows], -axis_dir))
-        cell_e_rad = _unit_with_fallback(g_t_cell, lambda rows: _normalise(e_rad[tets[rows]].mean(axis=1), -axis_dir))
-        return transmural, e_rad, cell_e_rad, transmural[tets].mean(axis=1)
+        g_t_cell = _cell_gradient(transmural, corners, shape_grads)
+        g_t = to_nodes(g_t_cell)
+        radial_guess = columns(points) - np.asarray(mesh.axis.base_centre, float)[:, None]
+        e_rad = _unit_with_fallback(g_t, lambda k: _normalise(radial_guess[:, k], -axis_dir))
+        cell_e_rad = _unit_with_fallback(
+            g_t_cell, lambda k: _normalise(_corner_mean(e_rad, corners[:, k]), -axis_dir))
+        return transmural, e_rad, cell_e_rad, _corner_mean(transmural, corners)
 
     # The two halves need each other only for e_long, which is orthogonal to e_rad: the
     # transmural half runs on a second thread while this one solves the apicobasal problem
@@ -214,25 +224,25 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
         depth = (mesh.axis.base_centre - points) @ axis_dir
         position = even_along_axis(apicobasal, depth, apex)
         circumferential = angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
-        g_a_cell = fem.cell_gradient(points, tets, apicobasal, grads=grads)
-        g_a = fem.cell_to_nodes(tets, g_a_cell, volumes, n_points=len(points))
-        scale = float(np.median(_row_norm(g_a)))
+        g_a_cell = _cell_gradient(apicobasal, corners, shape_grads)
+        g_a = to_nodes(g_a_cell)
+        scale = float(np.median(norm_columns(g_a)))
         centroids = mesh.cell_centroids
-        cell_apicobasal = position[tets].mean(axis=1)
+        cell_apicobasal = _corner_mean(position, corners)
         cell_circumferential = angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero)
         quality, cell_quality = frame_quality(points, mesh.axis), frame_quality(centroids, mesh.axis)
         transmural, e_rad, cell_e_rad, cell_transmural = transmural_half.result()
 
     e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
-    e_circ = cross(e_long, e_rad)
+    e_circ = cross_columns(e_long, e_rad)
     cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero, scale=scale)
-    cell_e_circ = cross(cell_e_long, cell_e_rad)
+    cell_e_circ = cross_columns(cell_e_long, cell_e_rad)
 
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
-        e_rad=e_rad, e_long=e_long, e_circ=e_circ,
-        cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
+        e_rad=rows(e_rad), e_long=rows(e_long), e_circ=rows(e_circ),
+        cell_e_rad=rows(cell_e_rad), cell_e_long=rows(cell_e_long), cell_e_circ=rows(cell_e_circ),
         cell_transmural=cell_transmural, cell_apicobasal=cell_apicobasal,
         cell_circumferential=cell_circumferential, frame_quality=quality, cell_frame_quality=cell_quality)
 
@@ -441,69 +451,93 @@ def angle_about_axis(points, centre, axis_dir, zero):
     return np.where(deg >= 180.0, deg - 360.0, deg)
 
 
-def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
-    """Unit e_long (K, 3) orthogonal to e_rad, with the blended fallbacks of the module doc."""
-    tangential = g_long - np.einsum("ij,ij->i", g_long, e_rad)[:, None] * e_rad
-    if scale is None:
-        scale = float(np.median(_row_norm(g_long)))
+def _cell_gradient(u: np.ndarray, corners: np.ndarray, shape_grads: np.ndarray) -> np.ndarray:
+    """Element gradients (3, M) of nodal values u (N,): `fem.cell_gradient` component-first,
+    from the corners (4, M) and the gradients (4, 3, M), summed over the corners in its order."""
+    at = u[corners]
+    out = at[0] * shape_grads[0]
+    for k in (1, 2, 3):
+        out += at[k] * shape_grads[k]
+    return out
 
-    def fallback(rows):
+
+def _corner_mean(values: np.ndarray, corners: np.ndarray) -> np.ndarray:
+    """Mean over each element's corners of nodal values (N,) or (3, N): ``values[tets].mean(axis=1)``
+    summed in the same order."""
+    total = values[..., corners[0]] + values[..., corners[1]]
+    total += values[..., corners[2]]
+    total += values[..., corners[3]]
+    return total / 4.0
+
+
+def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):
+    """Unit e_long (3, K) orthogonal to e_rad (3, K), with the blended fallbacks of the module doc."""
+    tangential = g_long - dot_columns(g_long, e_rad) * e_rad
+    if scale is None:
+        scale = float(np.median(norm_columns(g_long)))
+
+    def fallback(k):
         # the axis in the tangent plane, else the zero direction there; last resort, only where
         # e_rad is parallel to both (which are orthogonal, so never both): any vector orthogonal
-        r = e_rad[rows]
-        axis_t = axis_dir - np.einsum("ij,j->i", r, axis_dir)[:, None] * r
-        zero_t = zero - np.einsum("ij,j->i", r, zero)[:, None] * r
-        along_zero = _unit_with_fallback(zero_t, lambda k: _normalise(cross(r[k], zero), axis_dir), scale=1.0)
-        return _unit_with_fallback(axis_t, lambda k: along_zero[k], scale=1.0)
+        r = e_rad[:, k]
+        axis_t = axis_dir[:, None] - dot_columns(r, axis_dir) * r
+        zero_t = zero[:, None] - dot_columns(r, zero) * r
+        along_zero = _unit_with_fallback(zero_t, lambda j: _normalise(cross_columns(r[:, j], zero), axis_dir),
+                                         scale=1.0)
+        return _unit_with_fallback(axis_t, lambda j: along_zero[:, j], scale=1.0)
 
     e_long = _unit_with_fallback(tangential, fallback, scale=max(scale, 1e-300))
     # Blending two vectors orthogonal to e_rad stays orthogonal; repeat the projection only to
     # remove rounding.
-    e_long = e_long - np.einsum("ij,ij->i", e_long, e_rad)[:, None] * e_rad
+    e_long = e_long - dot_columns(e_long, e_rad) * e_rad
     return _normalise(e_long, fallback)
 
 
 def _unit_with_fallback(primary, fallback, *, scale=None):
-    """Normalise ``primary`` rows, blending smoothly toward unit fallback rows where short.
+    """Normalise the vectors ``primary`` (3, K), blending smoothly toward unit fallbacks where short.
 
-    ``fallback(rows)`` gives the unit fallback vectors (len(rows), 3) of the rows it is asked
-    for: only those of the short rows are computed. ``scale`` is the length taken as "full
-    size" (default: the median row length); rows shorter than ``_BLEND_LOW * scale`` are
-    replaced by the fallback, rows longer than ``_BLEND_HIGH * scale`` are kept, with a cubic
+    ``fallback(k)`` gives the unit fallback vectors (3, len(k)) of the columns k it is asked
+    for: only those of the short ones are computed. ``scale`` is the length taken as "full
+    size" (default: the median length); vectors shorter than ``_BLEND_LOW * scale`` are
+    replaced by the fallback, those longer than ``_BLEND_HIGH * scale`` are kept, with a cubic
     smoothstep in between.
     """
-    norm = _row_norm(primary)
+    norm = norm_columns(primary)
     if scale is None:
         scale = float(np.median(norm))
     if not np.isfinite(scale) or scale <= 0.0:
-        return np.array(fallback(np.arange(len(primary))), dtype=float)
+        return np.array(fallback(np.arange(primary.shape[1])), dtype=float)
     s = np.clip((norm / scale - _BLEND_LOW) / (_BLEND_HIGH - _BLEND_LOW), 0.0, 1.0)
     w = s * s * (3.0 - 2.0 * s)
-    unit = primary / np.where(norm > 0, norm, 1.0)[:, None]
-    rows = np.flatnonzero(w < 1.0)
-    if rows.size == 0:
+    unit = primary / np.where(norm > 0, norm, 1.0)
+    short = np.flatnonzero(w < 1.0)
+    if short.size == 0:
         return unit
-    fb, w, u = np.asarray(fallback(rows), float), w[rows][:, None], unit[rows]
+    fb, w, u = np.asarray(fallback(short), float), w[short], unit[:, short]
     blended = w * u + (1.0 - w) * fb
     # If primary and fallback point nearly opposite, the blend can cancel; take the heavier one.
-    cancelled = _row_norm(blended) < 0.25
-    blended[cancelled] = np.where(w[cancelled] >= 0.5, u[cancelled], fb[cancelled])
-    unit[rows] = _normalise(blended, fb)
+    cancelled = norm_columns(blended) < 0.25
+    blended[:, cancelled] = np.where(w[cancelled] >= 0.5, u[:, cancelled], fb[:, cancelled])
+    unit[:, short] = _normalise(blended, fb)
     return unit
 
 
 def _normalise(v, fallback):
-    """Unit rows of ``v``; rows of (near) zero length become the fallback: a vector, rows like
-    ``v``, or a function of the row indices giving those rows."""
+    """Unit vectors of ``v`` (3, K); those of (near) zero length become the fallback: a vector
+    (3,), vectors like ``v``, or a function of the column indices giving those columns."""
     v = np.asarray(v, dtype=float)
-    norm = _row_norm(v)
+    norm = norm_columns(v)
     ok = norm > 1e-12
-    # divide every row (no boolean gathers on the hot path), then mend the few short ones
-    out = v / np.where(ok, norm, 1.0)[:, None]
+    # divide every one (no boolean gathers on the hot path), then mend the few short ones
+    out = v / np.where(ok, norm, 1.0)
     if not np.all(ok):
         bad = np.flatnonzero(~ok)
-        fb = fallback(bad) if callable(fallback) else np.broadcast_to(np.asarray(fallback, float), v.shape)[bad]
-        out[bad] = fb / np.linalg.norm(fb, axis=1)[:, None]
+        if callable(fallback):
+            fb = fallback(bad)
+        else:
+            fb = np.asarray(fallback, float)
+            fb = np.repeat(fb[:, None], bad.size, axis=1) if fb.ndim == 1 else fb[:, bad]
+        out[:, bad] = fb / np.linalg.norm(fb, axis=0)
     return out
 
 

@@ -354,10 +354,12 @@ def cell_to_nodes(tets: np.ndarray, cell_values: np.ndarray, volumes: np.ndarray
     """
     cell_values = np.asarray(cell_values, float)
     flat = cell_values.reshape(len(tets), -1)
-    idx = np.asarray(tets).ravel()
-    w = np.repeat(volumes, 4)
-    weight = np.bincount(idx, weights=w, minlength=n_points)
-    out = np.stack([np.bincount(idx, weights=w * np.repeat(flat[:, c], 4), minlength=n_points)
+    idx = np.asarray(tets, dtype=np.intp).ravel()  # bincount's own index type: converted once
+    volumes = np.asarray(volumes, float)
+    weight = np.bincount(idx, weights=np.repeat(volumes, 4), minlength=n_points)
+    # each element's volume times its value, then repeated for its four corners (the same
+    # products as repeating both first, a quarter of the multiplications)
+    out = np.stack([np.bincount(idx, weights=np.repeat(volumes * flat[:, c], 4), minlength=n_points)
                     for c in range(flat.shape[1])], axis=1)
     out /= np.where(weight > 0, weight, 1.0)[:, None]
     return out.reshape((n_points,) + cell_values.shape[1:])
