@@ -59,11 +59,11 @@ def one(size: float, with_pools_bench: bool) -> dict:
             fill_s.append(time.perf_counter() - t)
 
     mesh_stage.fill_volume = timed_fill
-    try:
-        result = pipeline.run(contours, case)
+    out = Path(tempfile.mkdtemp(prefix="fibers-bench-"))
+    try:  # as a build runs: files written while later stages run go into its folder meanwhile
+        result = pipeline.run(contours, case, write_to=out)
     finally:
         mesh_stage.fill_volume = fill
-    out = Path(tempfile.mkdtemp(prefix="fibers-bench-"))
     t0 = time.perf_counter()
     outputs.write_all(out, result)
     result.timings["outputs"] = time.perf_counter() - t0

@@ -50,6 +50,8 @@ class Result:
     warnings: list = field(default_factory=list)
     # [mesh] order = 2: the 10-node elements; ``mesh`` is then their linear children
     quadratic: quadratic.QuadraticMesh | None = None
+    # files `run` wrote into its ``write_to`` folder already, which outputs.write_all skips
+    written: tuple = ()
 
 
 class _Clock:
@@ -69,12 +71,16 @@ class _Clock:
 
 
 def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landmarks | None = None,
-        clock: _Clock | None = None, notes: tuple[str, ...] = (), facts: dict | None = None) -> Result:
+        clock: _Clock | None = None, notes: tuple[str, ...] = (), facts: dict | None = None,
+        write_to: Path | None = None) -> Result:
     """Run every stage on checked contours and a resolved case (``fibers.io.case.Case``).
 
     ``notes`` are warnings raised earlier (while reading the inputs) that belong in the result;
     ``facts`` are summary entries found while reading them (the label map's slice table and
-    frames), merged into the summary.
+    frames), merged into the summary. ``write_to``: the build's (temporary) output folder; the
+    files that need part of the result only (the linear mesh's own files, the pools) are
+    written there on the second thread as soon as that part exists, and listed in
+    ``Result.written`` for `fibers.io.outputs.write_all` to skip.
     """
     clock = clock or _Clock()
     contours, right, route_notes = _split_ventricles(contours, case)
@@ -153,6 +159,9 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                               "circumferential angles start from an arbitrary direction; add [landmarks] to the "
                               "case file")
             labels = second.submit(segments.label_cells, wall, septum)
+            # the mesh's own files, written while the Laplace problems are solved
+            mesh_files = (second.submit(_mesh_files, write_to, wall, surf, stack)
+                          if write_to is not None and order == 1 else None)
             with clock.stage("coordinates", "transmural, apicobasal, circumferential, local frame"):
                 coords = coordinates.compute(wall, zero_direction=None if septum is None else septum.bisector,
                                              distances=distances, gradients=geometry)
@@ -160,28 +169,49 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
             # the pools' fields beside the architecture: both need only the coordinates (the
             # second thread runs jobs in order, so the points it waits for are drawn by then).
             # At 547k: architecture plus pools 0.29-0.39 s instead of 0.44-0.49 s.
-            fields = second.submit(lambda: pool_stage.build_pools(wall, coords, case.law, septum, case.pools,
-                                                                  box=box, drawn=drawn.result()))
+            fields = second.submit(lambda: _kept(pool_stage.build_pools(wall, coords, case.law, septum, case.pools,
+                                                                        box=box, drawn=drawn.result()), case.pools))
+            # and the pools' files, while the architecture is assigned
+            pool_files = (second.submit(lambda: _pool_files(write_to, fields.result()))
+                          if write_to is not None else None)
             with clock.stage("architecture", "fiber, sheet, sheet-normal"):
                 arch = architecture.assign(coords, case.law, wall, septal=septum is not None)
                 if quad is not None:
                     quad = quadratic.with_cell_fields(quad, coords, case.law, septum)
             with clock.stage("pools", lambda: ", ".join(f"{k} {len(v):,}" for k, v in pool_set.items())):
                 pool_set = fields.result()
-                # a count of 0 means "no such pool": absent from the files and the report
-                pool_set = {k: v for k, v in pool_set.items() if getattr(case.pools, k, 1) > 0}
                 aha = labels.result()
+                # the files written meanwhile (the wait for them counts here)
+                written = tuple(f.result() for f in (mesh_files, pool_files) if f is not None)
         caught = [str(w.message) for w in record]
     for message in list(stack.warnings) + caught:
         log.warning("%s", message)
     result = Result(contours=contours, stack=stack, surfaces=surf, mesh=wall, coords=coords, arch=arch,
                     septum=septum, aha=aha, pools=pool_set, landmarks=landmarks, box=box,
                     timings=clock.timings, warnings=list(notes) + list(stack.warnings) + caught,
-                    quadratic=quad)
+                    quadratic=quad, written=tuple(name for names in written for name in names))
     result.summary = summarise(result)
     result.summary.update(_slice_facts(result.stack, contours, base, facts or {}))
     result.summary["mesh_budget"] = plan  # the estimate beside the actual count, for the record
     return result
+
+
+def _kept(pools: dict, settings) -> dict:
+    """The pools asked for: a count of 0 means "no such pool", absent from the files and the report."""
+    return {k: v for k, v in pools.items() if getattr(settings, k, 1) > 0}
+
+
+def _mesh_files(folder: Path, wall, surf, stack) -> tuple[str, ...]:
+    from fibers.io.outputs import write_mesh_files
+
+    return write_mesh_files(folder, wall, surf, stack)
+
+
+def _pool_files(folder: Path, pools: dict) -> tuple[str, ...]:
+    from fibers.io.pools import write_pools
+
+    write_pools(folder, pools)
+    return ("pools",)
 
 
 # What the stages after meshing import on first use (the multigrid, the mesh-file writers):
@@ -327,10 +357,11 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
     notes = tuple(str(w.message) for w in record)
     for message in notes:
         log.warning("%s", message)
-    result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes,
-                 facts=facts)
-
+    # the temporary folder exists from here, so files can be written as their parts are ready
+    # (`run`'s write_to); on any error it goes, as before
     with folder.partial(out, inputs=inputs, force=force) as tmp:
+        result = run(contours, case, box=box, landmarks=landmarks, clock=clock, notes=notes,
+                     facts=facts, write_to=tmp)
         for name, src in (include or {}).items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)

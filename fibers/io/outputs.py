@@ -74,28 +74,46 @@ def cell_data(result) -> dict:
 def write_all(folder: Path, result) -> None:
     """Write mesh.vtu, mesh.xdmf + facets.xdmf (+ .h5), mesh.msh, surfaces.vtp and the pools.
 
-    Uncompressed binary throughout: zlib compression tripled the writing time for files that
-    shrink by less than half.
+    Files the build wrote already, while later stages ran (``result.written``, see
+    `write_mesh_files`), are not written again. Uncompressed binary throughout: zlib
+    compression tripled the writing time for files that shrink by less than half.
     """
     from fibers.io.pools import write_pools
     from fibers.sidework import side_thread
 
+    done = set(getattr(result, "written", ()))
     fem = fem_mesh(result)
     # Writing is mostly the kernel copying bytes into new file pages, which releases the GIL:
-    # mesh.vtu and mesh.msh go on a second thread while the rest is written here, 0.5-0.6 of
-    # the time in sequence at 547k tetrahedra (about 230 MB in all).
+    # mesh.vtu (and mesh.msh, if not written yet) go on a second thread while the rest is
+    # written here, 0.5-0.6 of the time in sequence at 547k tetrahedra (about 230 MB in all).
     with side_thread("fibers-write") as pool:
-        job = pool.submit(_write_vtu_and_msh, folder, fem)
+        job = pool.submit(_write_vtu_and_msh, folder, fem, msh="mesh.msh" not in done)
         write_xdmf(folder, fem)
-        write_surfaces(folder / "surfaces.vtp", result)
-        write_pools(folder, result.pools)
+        if "facets.xdmf" not in done:
+            write_facets(folder, fem)
+        if "surfaces.vtp" not in done:
+            write_surfaces(folder / "surfaces.vtp", result.mesh, result.surfaces, result.stack)
+        if "pools" not in done:
+            write_pools(folder, result.pools)
         write_segments_csv(folder / "segments.csv", result)
         job.result()
 
 
-def _write_vtu_and_msh(folder: Path, fem: "FemMesh") -> None:
-    write_vtu(folder / "mesh.vtu", fem)
+def write_mesh_files(folder: Path, wall, surfaces, stack) -> tuple[str, ...]:
+    """The files of the linear mesh alone, before any field exists: mesh.msh, facets.xdmf (+ .h5)
+    and surfaces.vtp, the same bytes as `write_all` writes. The pipeline writes them into the
+    build's folder while the coordinates are solved; returns their names, for ``result.written``."""
+    fem = _linear(wall, {}, {}, dict(FACE_TAG_NAMES))
     write_msh(folder / "mesh.msh", fem)
+    write_facets(folder, fem)
+    write_surfaces(folder / "surfaces.vtp", wall, surfaces, stack)
+    return "mesh.msh", "facets.xdmf", "surfaces.vtp"
+
+
+def _write_vtu_and_msh(folder: Path, fem: "FemMesh", *, msh: bool = True) -> None:
+    write_vtu(folder / "mesh.vtu", fem)
+    if msh:
+        write_msh(folder / "mesh.msh", fem)
 
 
 def write_segments_csv(path: Path, result) -> None:
@@ -152,7 +170,10 @@ def fem_mesh(result) -> FemMesh:
     if quad is not None:
         return FemMesh(2, quad.points, quad.tets, quad.faces, quad.face_tags, quad.rings, pdata,
                        quadratic.parent_cell_data(quad, cdata), names)
-    wall = result.mesh
+    return _linear(result.mesh, pdata, cdata, names)
+
+
+def _linear(wall, pdata: dict, cdata: dict, names: dict) -> FemMesh:
     base = wall.faces[wall.face_tags == BASE]
     rings = {tag: meshtools.shared_edges(wall.faces[wall.face_tags == tag], base) for tag in RING_TAGS}
     return FemMesh(1, wall.points, wall.tets, wall.faces, wall.face_tags, rings, pdata, cdata, names)
@@ -176,7 +197,7 @@ def write_vtu(path: Path, fem: FemMesh) -> None:
 
 
 def write_xdmf(folder: Path, fem: FemMesh) -> None:
-    """mesh.xdmf (volume cells, point and cell fields) and facets.xdmf (boundary, ``boundary`` tag).
+    """mesh.xdmf (+ mesh.h5): volume cells, point and cell fields (facets.xdmf: `write_facets`).
 
     One cell type per grid, both grids on the same points, as FEniCS-style codes read them:
     grid ``mesh`` with the segment labels as its first attribute, grid ``facets`` with the
@@ -184,17 +205,25 @@ def write_xdmf(folder: Path, fem: FemMesh) -> None:
     """
     import meshio
 
-    volume, face = fem.types[:2]
+    volume = fem.types[0]
     index = meshtools.index_dtype(len(fem.points))  # 9 MB less than int64 at 550k cells
     meshio.Mesh(fem.points, [(volume, fem.cells.astype(index, copy=False))], point_data=fem.point_data,
                 cell_data={k: [v] for k, v in fem.cell_data.items()}).write(folder / "mesh.xdmf", compression=None)
-    meshio.Mesh(fem.points, [(face, fem.faces.astype(index, copy=False))],
-                cell_data={"boundary": [fem.face_tags.astype(np.int32)]}).write(folder / "facets.xdmf",
-                                                                                compression=None)
     segments = {name: (number, 3) for number, name in SEGMENT_NAMES.items() if number > 0}
     _describe_xdmf(folder / "mesh.xdmf", "mesh", segments,
                    "aha_segment numbers and names; cell fields per element, point fields per node",
                    first="aha_segment")
+
+
+def write_facets(folder: Path, fem: FemMesh) -> None:
+    """facets.xdmf (+ facets.h5): the boundary faces on the mesh's points, tag ``boundary``."""
+    import meshio
+
+    face = fem.types[1]
+    index = meshtools.index_dtype(len(fem.points))
+    meshio.Mesh(fem.points, [(face, fem.faces.astype(index, copy=False))],
+                cell_data={"boundary": [fem.face_tags.astype(np.int32)]}).write(folder / "facets.xdmf",
+                                                                                compression=None)
     faces = {name: (tag, 2) for tag, name in fem.face_names.items()}
     _describe_xdmf(folder / "facets.xdmf", "facets", faces,
                    "boundary: " + ", ".join(f"{tag} {name}" for tag, name in fem.face_names.items()))
@@ -250,11 +279,10 @@ def write_msh(path: Path, fem: FemMesh) -> None:
     meshio.write(path, msh, file_format="gmsh22", binary=True)
 
 
-def write_surfaces(path: Path, result) -> None:
+def write_surfaces(path: Path, wall, surf, stack) -> None:
     """The fitted surfaces (as the mesh's tagged boundary) and the input contours with residuals."""
     from fibers.io.vtkxml import write_polydata
 
-    wall, surf = result.mesh, result.surfaces
     used = np.unique(wall.faces)
     remap = np.full(len(wall.points), -1)
     remap[used] = np.arange(len(used))
@@ -262,7 +290,7 @@ def write_surfaces(path: Path, result) -> None:
     pts = [wall.points[used]]
     n0 = next_index = len(used)
     lines, residual, slice_ids, structure = [], [], [], []
-    for sl in result.stack.slices:
+    for sl in stack.slices:
         for s, code in (("endo", 1), ("epi", 2)):
             c = getattr(sl, s)
             if c is None:
