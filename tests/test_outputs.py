@@ -89,15 +89,22 @@ def test_files_written_while_later_stages_run_match_a_write_at_the_end(built, tm
     # A build writes the mesh's own files (mesh.msh, facets, surfaces.vtp) while the coordinates
     # are solved and the pools while the architecture is assigned (pipeline.run's write_to);
     # they must be the bytes write_all writes from the finished result.
+    from dataclasses import replace
+
     from fibers import pipeline
     from fibers.io import case as case_io, outputs
 
     case = case_io.read_case(built / "input" / "case.toml")
     contours, landmarks, box, _, facts = pipeline._read_inputs(case)
-    result = pipeline.run(contours, case, box=box, landmarks=landmarks, facts=facts)
-    assert result.written == ()  # no folder given: nothing written by the run
-    outputs.write_all(tmp_path, result)
-    names = ["mesh.msh", "facets.xdmf", "facets.h5", "surfaces.vtp", "mesh.vtu", "mesh.h5", "segments.csv"]
-    names += [f"pools/{p.name}" for p in (built / "pools").iterdir()]
+    early, late = tmp_path / "early", tmp_path / "late"
+    early.mkdir()
+    late.mkdir()
+    result = pipeline.run(contours, case, box=box, landmarks=landmarks, facts=facts, write_to=early)
+    assert set(result.written) == {"mesh.msh", "facets.xdmf", "surfaces.vtp", "pools"}
+    assert {p.name for p in early.iterdir()} == {"mesh.msh", "facets.xdmf", "facets.h5", "surfaces.vtp", "pools"}
+    outputs.write_all(early, result)
+    outputs.write_all(late, replace(result, written=()))
+    names = sorted(str(p.relative_to(late)) for p in late.rglob("*") if p.is_file())
+    assert names == sorted(str(p.relative_to(early)) for p in early.rglob("*") if p.is_file())
     for name in names:
-        assert (built / name).read_bytes() == (tmp_path / name).read_bytes(), name
+        assert (early / name).read_bytes() == (late / name).read_bytes(), name
