@@ -138,10 +138,10 @@ def compute(mesh: WallMesh, *, zero_direction: np.ndarray | None = None,
         ``mesh.axis.reference``.
     tol : float
         Relative residual of the two Laplace solves. Measured on the demo ventricle at 547k
-        tetrahedra against a 1e-10 solve: 1e-5 leaves at most 2e-5 in the transmural and 7e-5
-        in the apicobasal coordinate (both run from 0 to 1) and turns the frames by at most
-        0.005 degrees (radial) and 0.09 degrees (longitudinal, in an element), for 20 and 11
-        CG iterations instead of 25 and 13 at 1e-6 (0.41 s instead of 0.51 s for both solves).
+        tetrahedra against a 1e-10 solve: 1e-5 leaves at most 2.2e-5 in the transmural and
+        5.3e-5 in the apicobasal coordinate (both run from 0 to 1) and turns the frames by at
+        most 0.004 degrees (radial) and 0.10 degrees (longitudinal, in an element), for 22 and
+        15 CG iterations instead of 28 and 18 at 1e-6 (the l1-Jacobi cycle of `fibers.fem`).
         The rule's own angles are given in whole degrees.
     distances : concurrent.futures.Future, optional
         A future of ``surface_distances(mesh)`` already running elsewhere (the pipeline runs it
