@@ -211,11 +211,20 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
             g_t_cell, lambda k: _normalise(_corner_mean(e_rad, corners[:, k]), -axis_dir))
         return transmural, e_rad, cell_e_rad, _corner_mean(transmural, corners)
 
+    def about_axis():
+        """What needs the positions alone: the circumferential angles and the frame quality."""
+        centroids = mesh.cell_centroids
+        return (angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero),
+                angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero),
+                frame_quality(points, mesh.axis), frame_quality(centroids, mesh.axis))
+
     # The two halves need each other only for e_long, which is orthogonal to e_rad: the
-    # transmural half runs on a second thread while this one solves the apicobasal problem
-    # (in turn on a cohort worker, fibers.sidework). The same bytes either way.
+    # transmural half runs on a second thread while this one solves the apicobasal problem,
+    # then the angles about the axis, while this one forms the apicobasal gradients (in turn
+    # on a cohort worker, fibers.sidework). The same bytes either way.
     with side_thread("fibers-transmural") as side:
         transmural_half = side.submit(radial)
+        positional = side.submit(about_axis)
         apex = apex_patch(mesh)
         base_only = np.setdiff1d(base, apex)
         apicobasal = np.clip(fem.solve_dirichlet(
@@ -223,15 +232,12 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
             np.concatenate([np.ones(base_only.size), np.zeros(apex.size)]), tol=tol), 0.0, 1.0)
         depth = (mesh.axis.base_centre - points) @ axis_dir
         position = even_along_axis(apicobasal, depth, apex)
-        circumferential = angle_about_axis(points, mesh.axis.base_centre, axis_dir, zero)
         g_a_cell = _cell_gradient(apicobasal, corners, shape_grads)
         g_a = to_nodes(g_a_cell)
         scale = float(np.median(norm_columns(g_a)))
-        centroids = mesh.cell_centroids
         cell_apicobasal = _corner_mean(position, corners)
-        cell_circumferential = angle_about_axis(centroids, mesh.axis.base_centre, axis_dir, zero)
-        quality, cell_quality = frame_quality(points, mesh.axis), frame_quality(centroids, mesh.axis)
         transmural, e_rad, cell_e_rad, cell_transmural = transmural_half.result()
+        circumferential, cell_circumferential, quality, cell_quality = positional.result()
 
     e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
     e_circ = cross_columns(e_long, e_rad)
