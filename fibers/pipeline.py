@@ -112,12 +112,13 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
         # What needs the mesh alone runs on a second thread beside the main line (numpy's array
         # work, the k-d queries and gmsh's calls release the GIL): the cavity and background
         # pools need only the boundary we triangulate, so they are drawn while gmsh fills the
-        # volume, and the boundary nodes' distances to the two surfaces found; then the other
-        # nodes' distances (the coordinates wait for them) and the
-        # other pools' points (only their fields wait for the coordinates), begun while the mesh's
-        # quality is measured, and the elements' segment labels, while the Laplace problems are
-        # solved. On a cohort worker, which has one core, each runs when the stage that needs it
-        # asks for it (fibers.sidework), so its time counts there. Same numbers, same bytes.
+        # volume, and the boundary nodes' distances to the two surfaces found; then the septum,
+        # the other nodes' distances (the coordinates wait for them) and the other pools' points
+        # (only their fields wait for the coordinates), begun while the mesh's quality is
+        # measured, and the elements' segment labels and the mesh's own files, while the
+        # Laplace problems are solved; the pools' files while the architecture is assigned.
+        # On a cohort worker, which has one core, each runs when the stage that needs it asks
+        # for it (fibers.sidework), so its time counts there. Same numbers, same bytes.
         order = getattr(case, "mesh_order", 1)
         with side_thread("fibers-side") as second:
             with clock.stage("mesh", lambda: _mesh_line(wall, quad)):
@@ -141,6 +142,9 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                     wall.quality.update(mesh_stage.tet_quality(wall.points, wall.tets))
                     quad = quadratic.elevate(wall, surf)
                     wall = quad.linear
+                # the septum from the landmarks first: the coordinates start from it
+                located = second.submit(segments.locate_septum, wall, landmarks,
+                                        sectors=getattr(case, "septal_sectors", "fixed"))
                 distances = second.submit(lambda: coordinates.surface_distances(
                     wall, known=None if near is None else near.result()))
                 drawn = second.submit(lambda: pool_stage.draw_positions(
@@ -153,7 +157,7 @@ def run(contours: RawContours, case, *, box: Box | None = None, landmarks: Landm
                                                                gradients=geometry[1]))
             with clock.stage("segments", lambda: "landmarks from " + landmarks.source if septum is not None
                              else "no landmarks"):
-                septum = segments.locate_septum(wall, landmarks, sectors=getattr(case, "septal_sectors", "fixed"))
+                septum = located.result()
             if septum is None:
                 warnings.warn("no right-ventricular insertion landmarks: the 17 segment labels are all 0 and "
                               "circumferential angles start from an arbitrary direction; add [landmarks] to the "
