@@ -371,7 +371,7 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
             shutil.copyfile(src, tmp / name)
         with warnings.catch_warnings(record=True) as record:
             warnings.simplefilter("always")
-            with clock.stage("outputs", "mesh.vtu, mesh.xdmf, facets.xdmf, mesh.msh, surfaces.vtp, pools/"):
+            with clock.stage("outputs", lambda: _outputs_line(result)):
                 outputs.write_all(tmp, result)
                 if case.labelmap is not None:   # the extracted contours, to edit and rebuild
                     from fibers.io import contours as contour_io
@@ -401,6 +401,15 @@ def _build_locked(case, out: Path, *, report, include, force, inputs, extra=None
     log.info("%-13s %7.2f s  wrote %s%s", "total", clock.timings["total"], out,
              f" (open {out / 'report' / 'index.html'})" if report else "")
     return manifest
+
+
+def _outputs_line(result) -> str:
+    """The outputs stage's progress line: the files it writes, and those written meanwhile."""
+    files = ("mesh.vtu", "mesh.xdmf", "facets.xdmf", "mesh.msh", "surfaces.vtp", "pools/", "segments.csv")
+    earlier = set(getattr(result, "written", ()))
+    now = [f for f in files if f.rstrip("/") not in earlier]
+    before = [f for f in files if f.rstrip("/") in earlier]
+    return ", ".join(now) + (f" ({', '.join(before)} written while the stages ran)" if before else "")
 
 
 def _distinct(messages) -> list[str]:
