@@ -235,20 +235,26 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
         g_a_cell = _cell_gradient(apicobasal, corners, shape_grads)
         g_a = to_nodes(g_a_cell)
         scale = float(np.median(norm_columns(g_a)))
-        cell_apicobasal = _corner_mean(position, corners)
-        transmural, e_rad, cell_e_rad, cell_transmural = transmural_half.result()
-        circumferential, cell_circumferential, quality, cell_quality = positional.result()
 
-    e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
-    e_circ = cross_columns(e_long, e_rad)
-    cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero, scale=scale)
-    cell_e_circ = cross_columns(cell_e_long, cell_e_rad)
+        def cell_frames():
+            """The elements' frames as rows, on the other thread while this one does the nodes'."""
+            cell_e_rad = transmural_half.result()[2]
+            cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero, scale=scale)
+            return rows(cell_e_rad), rows(cell_e_long), rows(cross_columns(cell_e_long, cell_e_rad))
+
+        in_cells = side.submit(cell_frames)
+        cell_apicobasal = _corner_mean(position, corners)
+        transmural, e_rad, _, cell_transmural = transmural_half.result()
+        circumferential, cell_circumferential, quality, cell_quality = positional.result()
+        e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
+        e_circ = cross_columns(e_long, e_rad)
+        cell_e_rad, cell_e_long, cell_e_circ = in_cells.result()
 
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
         e_rad=rows(e_rad), e_long=rows(e_long), e_circ=rows(e_circ),
-        cell_e_rad=rows(cell_e_rad), cell_e_long=rows(cell_e_long), cell_e_circ=rows(cell_e_circ),
+        cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
         cell_transmural=cell_transmural, cell_apicobasal=cell_apicobasal,
         cell_circumferential=cell_circumferential, frame_quality=quality, cell_frame_quality=cell_quality)
 
