@@ -60,6 +60,7 @@ import numpy as np
 
 from fibers import fem
 from fibers.errors import InputError
+from fibers.meshtools import corner_mean
 from fibers.sidework import side_thread
 from fibers.types import BASE, ENDO, EPI, WallMesh
 from fibers.vectors import columns, cross, cross_columns, dot_columns, norm_columns, rows
@@ -203,13 +204,13 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
         transmural = np.clip(fem.solve_dirichlet(  # the discrete maximum principle holds only on
             K, np.concatenate([endo, epi]),        # non-obtuse meshes; clip the tiny overshoot
             np.concatenate([np.zeros(endo.size), np.ones(epi.size)]), tol=tol), 0.0, 1.0)
-        g_t_cell = _cell_gradient(transmural, corners, shape_grads)
+        g_t_cell = fem.cell_gradient_columns(transmural, corners, shape_grads)
         g_t = to_nodes(g_t_cell)
         radial_guess = columns(points) - np.asarray(mesh.axis.base_centre, float)[:, None]
         e_rad = _unit_with_fallback(g_t, lambda k: _normalise(radial_guess[:, k], -axis_dir))
         cell_e_rad = _unit_with_fallback(
-            g_t_cell, lambda k: _normalise(_corner_mean(e_rad, corners[:, k]), -axis_dir))
-        return transmural, e_rad, cell_e_rad, _corner_mean(transmural, corners)
+            g_t_cell, lambda k: _normalise(corner_mean(e_rad, corners[:, k]), -axis_dir))
+        return transmural, e_rad, cell_e_rad, corner_mean(transmural, corners)
 
     def about_axis():
         """What needs the positions alone: the circumferential angles and the frame quality."""
@@ -232,7 +233,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
             np.concatenate([np.ones(base_only.size), np.zeros(apex.size)]), tol=tol), 0.0, 1.0)
         depth = (mesh.axis.base_centre - points) @ axis_dir
         position = even_along_axis(apicobasal, depth, apex)
-        g_a_cell = _cell_gradient(apicobasal, corners, shape_grads)
+        g_a_cell = fem.cell_gradient_columns(apicobasal, corners, shape_grads)
         g_a = to_nodes(g_a_cell)
         scale = float(np.median(norm_columns(g_a)))
 
@@ -243,7 +244,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
             return rows(cell_e_rad), rows(cell_e_long), rows(cross_columns(cell_e_long, cell_e_rad))
 
         in_cells = side.submit(cell_frames)
-        cell_apicobasal = _corner_mean(position, corners)
+        cell_apicobasal = corner_mean(position, corners)
         transmural, e_rad, _, cell_transmural = transmural_half.result()
         circumferential, cell_circumferential, quality, cell_quality = positional.result()
         e_long = _longitudinal(g_a, e_rad, axis_dir, zero)
@@ -290,14 +291,14 @@ def surface_distances(mesh: WallMesh, points: np.ndarray | None = None, *,
         points = np.asarray(points, float).reshape(-1, 3)
         return tuple(distance_to_surface(points, mesh.points, mesh.faces[mesh.face_tags == tag])
                      for tag in (ENDO, EPI))
-    rows = None if known is None else known.rows_in(mesh)
-    if rows is not None:
+    on_boundary = None if known is None else known.rows_in(mesh)
+    if on_boundary is not None:
         rest = np.ones(len(mesh.points), bool)
-        rest[rows] = False
+        rest[on_boundary] = False
         out = []
         for near, surface in zip(known.near, known.surfaces):
             d = np.empty(len(mesh.points))
-            d[rows] = near
+            d[on_boundary] = near
             d[rest] = surface.distance(mesh.points[rest])
             out.append(d)
         return tuple(out)
@@ -461,25 +462,6 @@ def angle_about_axis(points, centre, axis_dir, zero):
                                 np.einsum("ij,j->i", rel, zero)))
     # arctan2 returns (-180, 180]; move +180 to -180 to get the half-open range.
     return np.where(deg >= 180.0, deg - 360.0, deg)
-
-
-def _cell_gradient(u: np.ndarray, corners: np.ndarray, shape_grads: np.ndarray) -> np.ndarray:
-    """Element gradients (3, M) of nodal values u (N,): `fem.cell_gradient` component-first,
-    from the corners (4, M) and the gradients (4, 3, M), summed over the corners in its order."""
-    at = u[corners]
-    out = at[0] * shape_grads[0]
-    for k in (1, 2, 3):
-        out += at[k] * shape_grads[k]
-    return out
-
-
-def _corner_mean(values: np.ndarray, corners: np.ndarray) -> np.ndarray:
-    """Mean over each element's corners of nodal values (N,) or (3, N): ``values[tets].mean(axis=1)``
-    summed in the same order."""
-    total = values[..., corners[0]] + values[..., corners[1]]
-    total += values[..., corners[2]]
-    total += values[..., corners[3]]
-    return total / 4.0
 
 
 def _longitudinal(g_long, e_rad, axis_dir, zero, *, scale=None):

@@ -137,9 +137,9 @@ def _amg_vcycle(A: sp.csr_matrix):
     and Yang, SIAM J Sci Comput 2011). ``D1 - A`` is positive semi-definite, so for any
     ``w < 2`` the sweep converges and the cycle, the same sweep before and after, is a
     symmetric positive definite preconditioner, as CG needs. Of w = 1, 1.33, 1.5, 1.6 and 1.8,
-    1.5 and 1.8 were the fastest here; `_L1_DAMPING` is 1.5, further from 2. The sweep is a sparse product and
-    vector arithmetic, which release the GIL, where pyamg's Gauss-Seidel sweeps hold it: the
-    coordinates' two solves, on two threads, run side by side. At 547k tetrahedra (CG to 1e-5):
+    1.5 and 1.8 were the fastest here; `_L1_DAMPING` is 1.5, further from 2. The sweep is a
+    sparse product and vector arithmetic, which release the GIL, where pyamg's Gauss-Seidel
+    sweeps hold it: the coordinates' two solves, on two threads, run side by side. At 547k tetrahedra (CG to 1e-5):
     15 and 22 iterations instead of 11 and 20 with a forward and a backward Gauss-Seidel
     sweep, 0.28-0.30 s for both solves on two threads against 0.52-0.57 s, 0.36-0.39 s against
     0.48-0.62 s one after the other (set-ups included).
@@ -321,7 +321,19 @@ def cell_gradient(points: np.ndarray, tets: np.ndarray, u: np.ndarray, *,
     """
     if grads is None:
         _, grads = tet_gradients(points, tets)
-    return np.einsum("mk,mkj->mj", np.asarray(u, float)[tets], grads)
+    corners = np.ascontiguousarray(np.asarray(tets, dtype=np.intp).T)
+    return np.ascontiguousarray(cell_gradient_columns(u, corners, np.ascontiguousarray(grads.transpose(1, 2, 0))).T)
+
+
+def cell_gradient_columns(u: np.ndarray, corners: np.ndarray, shape_grads: np.ndarray) -> np.ndarray:
+    """`cell_gradient` component-first: gradients (3, M) from the corners (4, M) (``tets.T``)
+    and the shape-function gradients (4, 3, M) (``grads.transpose(1, 2, 0)``, no copy for
+    those of `tet_gradients`). Summed over the corners in order, as einsum sums them."""
+    at = np.asarray(u, float)[corners]
+    out = at[0] * shape_grads[0]
+    for k in (1, 2, 3):
+        out += at[k] * shape_grads[k]
+    return out
 
 
 def nodal_gradient(points: np.ndarray, tets: np.ndarray, u: np.ndarray, *,

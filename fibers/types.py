@@ -148,17 +148,11 @@ class WallMesh:
     @cached_property
     def cell_centroids(self) -> np.ndarray:
         """Centroids (M, 3) mm of the tetrahedra, computed once (segments, frames, fibers)."""
-        # a component at a time over contiguous columns, summed in the order mean(axis=1) sums
-        # (the same bits), instead of an (M, 4, 3) gather: a quarter of the time at 547k
-        p = np.ascontiguousarray(np.asarray(self.points, float).T)
-        t = np.ascontiguousarray(np.asarray(self.tets).T)
-        out = np.empty((3, t.shape[1]))
-        for j, pj in enumerate(p):
-            total = pj[t[0]] + pj[t[1]]
-            total += pj[t[2]]
-            total += pj[t[3]]
-            np.divide(total, 4.0, out=out[j])
-        return np.ascontiguousarray(out.T)
+        from fibers.meshtools import corner_mean
+        from fibers.vectors import columns, rows
+
+        # over contiguous components, not an (M, 4, 3) gather: a quarter of the time at 547k
+        return rows(corner_mean(columns(self.points), np.ascontiguousarray(np.asarray(self.tets, np.intp).T)))
 
     def face_nodes(self, tag: int) -> np.ndarray:
         """Sorted unique node indices on the boundary faces with this tag."""
