@@ -142,11 +142,11 @@ def fill_wall(surfaces: Surfaces, boundary: Boundary, *, size: float = 1.5, thre
     points, tets, tri = fill_volume(boundary.local, boundary.tri, boundary.rims,
                                     {ENDO: ["endo"], EPI: ["epi"], BASE: ["endo", "epi"]}, size, threads)
     points_world = axis.to_world(points)
-    tets, faces, face_tags = tagged_boundary(points_world, tets, tri)
+    tets, faces, face_tags, owners = tagged_boundary(points_world, tets, tri)
     return WallMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                     endo_apex=surfaces.apex("endo"), epi_apex=surfaces.apex("epi"),
                     quality=tet_quality(points_world, tets) if quality else {},
-                    boundary_nodes=boundary_rows(boundary, points, tri))
+                    boundary_nodes=boundary_rows(boundary, points, tri), face_owners=owners)
 
 
 def boundary_rows(boundary: Boundary, points: np.ndarray, tri: dict) -> np.ndarray | None:
@@ -365,8 +365,10 @@ def fill_volume(local, tri: dict, rims: dict, bounds: dict, size: float, threads
     return points, tets, tri
 
 
-def tagged_boundary(points: np.ndarray, tets: np.ndarray, tri: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Positively oriented tetrahedra, their boundary faces (out of the wall) and the faces' tags.
+def tagged_boundary(points: np.ndarray, tets: np.ndarray,
+                    tri: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Positively oriented tetrahedra, their boundary faces (out of the wall), the faces' tags
+    and the element owning each face.
 
     Only elements touching our triangles' nodes are searched for boundary faces. That finds
     every boundary face when gmsh kept our surfaces; that it did is checked by the count of
@@ -383,7 +385,7 @@ def tagged_boundary(points: np.ndarray, tets: np.ndarray, tri: dict) -> tuple[np
     ours = np.concatenate(list(tri.values()))
     on = np.zeros(len(points), bool)
     on[ours] = True
-    faces, _ = meshtools.boundary_faces(tets, on)
+    faces, owners = meshtools.boundary_faces(tets, on)
     face_tags = match_face_tags(faces, tri, len(points))
     filled = float(np.abs(signed).sum())
     enclosed = meshtools.enclosed_volume(points, faces)
@@ -391,7 +393,7 @@ def tagged_boundary(points: np.ndarray, tets: np.ndarray, tri: dict) -> tuple[np
         raise RuntimeError(f"gmsh's tetrahedra fill {filled:.6g} mm^3 with {len(faces)} boundary faces on our "
                            f"{len(ours)} triangles enclosing {enclosed:.6g} mm^3; the mesh is not bounded by the "
                            "fitted surfaces")
-    return tets, faces, face_tags
+    return tets, faces, face_tags, owners
 
 
 def match_face_tags(faces, tri, n_points):

@@ -304,8 +304,12 @@ def _rejection(rng, n, sampler, draw, accept, rate) -> np.ndarray:
                      "and the mesh")
 
 
-def _owners(mesh: WallMesh) -> np.ndarray:
-    """Element (F,) owning each row of ``mesh.faces`` (-1 if none has that face)."""
+def face_owners(mesh: WallMesh) -> np.ndarray:
+    """Element (F,) owning each row of ``mesh.faces`` (-1 if none has that face): the mesh
+    stage's (``mesh.face_owners``) when it found them, else searched for."""
+    known = getattr(mesh, "face_owners", None)
+    if known is not None and len(known) == len(mesh.faces):
+        return known
     n = len(mesh.points)
     # Only an element with three vertices on the boundary can own a boundary face: searching
     # their faces alone sorts about a tenth of all faces (an element owns a face at most once,
@@ -408,7 +412,7 @@ def draw_positions(mesh: WallMesh, settings: PoolSettings, *, box: Box | None = 
     log.debug("pool myocardium: %d points", n)
 
     normals, areas = meshtools.triangle_normals(mesh.points, mesh.faces)
-    owner = _owners(mesh) if any(getattr(settings, k) for k in _SURFACE_TAGS) else None
+    owner = face_owners(mesh) if any(getattr(settings, k) for k in _SURFACE_TAGS) else None
     for name, tag in _SURFACE_TAGS.items():
         n = int(getattr(settings, name))
         rows = np.flatnonzero(mesh.face_tags == tag)

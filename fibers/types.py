@@ -125,6 +125,9 @@ class WallMesh:
     boundary_nodes : ndarray (P,) int, optional
         For a mesh filled in a `fibers.mesh.Boundary`: the row in ``points`` of each of the
         boundary's nodes (gmsh renumbers them). None otherwise (a mesh read from files, say).
+    face_owners : ndarray (F,) int, optional
+        The element owning each face, when the mesh stage found it with the faces (else
+        `fibers.pools.face_owners` searches for it).
     """
 
     points: np.ndarray
@@ -136,6 +139,7 @@ class WallMesh:
     epi_apex: np.ndarray
     quality: dict = field(default_factory=dict)
     boundary_nodes: np.ndarray | None = None
+    face_owners: np.ndarray | None = None
 
     @cached_property
     def cell_volumes(self) -> np.ndarray:

@@ -200,8 +200,11 @@ def test_a_boundary_gmsh_changed_is_refused(exact_oblique):
 
     _, _, (_, _, wall) = exact_oblique
     tri = {tag: wall.faces[wall.face_tags == tag] for tag in (ENDO, EPI, BASE)}
-    tets, faces, tags = mesh.tagged_boundary(wall.points, wall.tets, tri)
+    tets, faces, tags, owners = mesh.tagged_boundary(wall.points, wall.tets, tri)
     assert np.array_equal(faces, wall.faces) and np.array_equal(tags, wall.face_tags)
+    # each face is one of its owner's four faces
+    local = np.sort(tets[owners][:, [[1, 2, 3], [0, 2, 3], [0, 1, 3], [0, 1, 2]]], axis=2)
+    assert (local == np.sort(faces, axis=1)[:, None, :]).all(axis=2).any(axis=1).all()
     on = np.zeros(len(wall.points), bool)
     on[wall.faces] = True
     inner = np.flatnonzero(~on[wall.tets].any(axis=1))[0]

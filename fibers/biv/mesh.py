@@ -95,11 +95,11 @@ def build_mesh(lv: Surfaces, right: RightSurfaces, *, size: float = 1.5, threads
                                     size, threads, name="biventricular wall")
     axis = lv.axis
     points_world = axis.to_world(points)
-    tets, faces, face_tags = tagged_boundary(points_world, tets, tri)
+    tets, faces, face_tags, owners = tagged_boundary(points_world, tets, tri)
     region = label_regions(points, tets, right)
     return BiVMesh(points=points_world, tets=tets, faces=faces, face_tags=face_tags, axis=axis,
                    endo_apex=lv.apex("endo"), epi_apex=lv.apex("epi"),
-                   quality=tet_quality(points_world, tets), region=region, right=right)
+                   quality=tet_quality(points_world, tets), region=region, right=right, face_owners=owners)
 
 
 class _Nodes:

@@ -124,7 +124,7 @@ def _rv_endo_arrays(mesh, coords, arch, fields, law, septum, settings, rng, rule
     points = np.einsum("km,kmj->kj", w, mesh.points[mesh.faces[face]])
     arrays = {"points": points, "normal": normals[face]}
     arrays.update(pool_stage.point_fields(points, mesh.faces[face], w, mesh, coords, law, septum))
-    owner = pool_stage._owners(mesh)
+    owner = pool_stage.face_owners(mesh)
     arrays["face"] = face
     arrays["tet"] = owner[face] if n else np.zeros(0, np.int64)
     _biv_fields(arrays, mesh, arch, fields, rule)
