@@ -50,6 +50,8 @@ from fibers.vectors import columns, cross_columns, dot_columns, norm_columns, ro
 # the axis at the point (sin 11.5 and sin 30 degrees).
 _SAX_LOW, _SAX_HIGH = 0.2, 0.5
 
+_CHUNK = 32_768  # rows `point_triad` lays out at once (16-64k were as fast)
+
 TRIAD_FIELDS = ("fiber", "sheet", "sheet_normal", "helix_angle", "helix_angle_sax",
                 "imbrication_angle", "sheet_angle", "dispersion")
 
@@ -176,6 +178,13 @@ def point_triad(fields: dict, law: FiberLaw, *, axis, septal: bool = False, angl
     if missing:
         raise InputError(f"point_triad: fields {', '.join(missing)} are missing; pass them "
                          "interpolated at the points")
+    k = len(fields["points"])
+    if k > _CHUNK and all(len(fields[name]) == k for name in need):
+        # row by row arithmetic, so chunks give the same bits; their temporaries stay in cache:
+        # the 547k elements of the demo ventricle in 0.11 s instead of 0.18 s
+        parts = [point_triad({name: fields[name][first:first + _CHUNK] for name in need}, law, axis=axis,
+                             septal=septal, angles=angles) for first in range(0, k, _CHUNK)]
+        return {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
     # component-first (3, K) from here on: every product runs over contiguous memory
     n, e_long, e_circ = _orthonormal_frame(fields["e_rad"], fields["e_long"], fields["e_circ"])
     k = n.shape[1]
@@ -413,11 +422,11 @@ def _unit_columns(v, fallback):
     """Unit columns of ``v`` (3, K); those shorter than 1e-9 taken from ``fallback(k)`` (then any unit)."""
     norm = norm_columns(v)
     bad = norm < 1e-9
-    if np.any(bad):
+    if np.any(bad):  # row by row: the other rows keep their own norms (chunks, see point_triad)
         v = v.copy()
         v[:, bad] = fallback(np.flatnonzero(bad))
-        norm = np.linalg.norm(v, axis=0)
-        still = norm < 1e-9
+        norm[bad] = np.linalg.norm(v[:, bad], axis=0)
+        still = bad & (norm < 1e-9)
         v[:, still] = [[1.0], [0.0], [0.0]]
         norm[still] = 1.0
     return v / norm

@@ -169,3 +169,34 @@ def test_fibers_rotate_with_the_mesh(mesh, coords):
     for name in ("fiber", "sheet", "sheet_normal", "cell_fiber", "cell_sheet",
                  "cell_sheet_normal"):
         np.testing.assert_allclose(getattr(b, name), getattr(a, name) @ R.T, atol=1e-5)
+
+
+def test_point_triad_in_chunks_gives_the_same_bits(monkeypatch):
+    # point_triad lays out long inputs chunk by chunk (cache-sized temporaries); its arithmetic is
+    # row by row, so the chunks must give the bits of one pass, degenerate rows included (a zero
+    # e_rad takes the fallback in its own row only). The reference is the same function with
+    # chunking off: a self-consistency check of the chunking, not of the rule.
+    from dataclasses import replace
+
+    from fibers.types import LongAxis
+
+    rng = np.random.default_rng(5)
+    k = 5000
+    e_rad = rng.normal(size=(k, 3))
+    e_rad /= np.linalg.norm(e_rad, axis=1, keepdims=True)
+    e_rad[[7, 4321]] = 0.0  # degenerate: the fallback (e_circ x e_long) in these rows
+    e_long = rng.normal(size=(k, 3))
+    e_circ = np.cross(e_long, e_rad + 0.3)
+    fields = {"points": rng.normal(scale=30.0, size=(k, 3)), "e_rad": e_rad, "e_long": e_long, "e_circ": e_circ,
+              "transmural": rng.random(k), "thickness_fraction": rng.random(k), "apicobasal": rng.random(k),
+              "circumferential": rng.uniform(-180, 180, k)}
+    axis = LongAxis(base_centre=np.zeros(3), direction=np.array([0.0, 0.0, 1.0]), reference=np.array([1.0, 0.0, 0.0]))
+    for law in (FiberLaw(), replace(FiberLaw(), helix_frame="laplace", helix_septal_offset=10.0)):
+        monkeypatch.setattr(architecture, "_CHUNK", 10 * k)
+        whole = architecture.point_triad(fields, law, axis=axis, septal=True)
+        monkeypatch.setattr(architecture, "_CHUNK", 777)
+        chunked = architecture.point_triad(fields, law, axis=axis, septal=True)
+        assert whole.keys() == chunked.keys()
+        for name in whole:
+            assert np.array_equal(whole[name], chunked[name]), name
+        assert np.all(np.isfinite(whole["fiber"]))
