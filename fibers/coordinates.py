@@ -63,7 +63,7 @@ from fibers.errors import InputError
 from fibers.meshtools import corner_mean
 from fibers.sidework import side_thread
 from fibers.types import BASE, ENDO, EPI, WallMesh
-from fibers.vectors import columns, cross, cross_columns, dot_columns, norm_columns, rows
+from fibers.vectors import columns, cross, cross_columns, dot_columns, norm_columns, rows_view
 
 log = logging.getLogger(__name__)
 
@@ -241,7 +241,7 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
             """The elements' frames as rows, on the other thread while this one does the nodes'."""
             cell_e_rad = transmural_half.result()[2]
             cell_e_long = _longitudinal(g_a_cell, cell_e_rad, axis_dir, zero, scale=scale)
-            return rows(cell_e_rad), rows(cell_e_long), rows(cross_columns(cell_e_long, cell_e_rad))
+            return rows_view(cell_e_rad), rows_view(cell_e_long), rows_view(cross_columns(cell_e_long, cell_e_rad))
 
         in_cells = side.submit(cell_frames)
         cell_apicobasal = corner_mean(position, corners)
@@ -254,7 +254,9 @@ def _laplace_frames(mesh, axis_dir, zero, endo, epi, base, tol, gradients=None) 
     log.debug("cardiac coordinates: %d nodes, apical patch of %d nodes", len(points), apex.size)
     return CardiacCoordinates(
         transmural=transmural, apicobasal=position, circumferential=circumferential,
-        e_rad=rows(e_rad), e_long=rows(e_long), e_circ=rows(e_circ),
+        # the frames as row views of their component-first arrays: the consumers (the fiber rule,
+        # the pools, the writers) take components or contiguous copies anyway
+        e_rad=rows_view(e_rad), e_long=rows_view(e_long), e_circ=rows_view(e_circ),
         cell_e_rad=cell_e_rad, cell_e_long=cell_e_long, cell_e_circ=cell_e_circ,
         cell_transmural=cell_transmural, cell_apicobasal=cell_apicobasal,
         cell_circumferential=cell_circumferential, frame_quality=quality, cell_frame_quality=cell_quality)

@@ -33,6 +33,12 @@ def rows(c: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(c.T)
 
 
+def rows_view(c: np.ndarray) -> np.ndarray:
+    """A component-first (3, K) array seen as rows (K, 3) without a copy (not C-contiguous:
+    `columns` gives the (3, K) array back for free; writers take contiguous copies)."""
+    return c.T
+
+
 def dot_columns(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Row-wise dot products of component-first arrays (3, K); a (3,) vector broadcasts.
 
