@@ -4,16 +4,17 @@ Used for the thickness depth of the wall (:func:`fibers.coordinates.surface_dist
 candidates of each point are the triangles around its two nearest surface vertices (a k-d tree
 over the vertices, then each vertex's ring of triangles); the distance to each candidate is the
 exact point-to-triangle distance, by the region test of Ericson, Real-Time Collision Detection
-(2005), section 5.1.5, from memory, written for arrays. The closest point of a surface of nearly
-even triangles lies in the rings of the nearest vertices. One ring is not always enough: on a
-spheroidal shell meshed at 3 mm (2,667 nodes) the ring of the nearest vertex missed the closest
-epicardial triangle at one node, by 0.007 mm, and only in one of two rigidly moved copies, so
-the depth was not invariant under a rigid motion; the rings of the two nearest equal brute
-force at every node of both copies and of the tests' tilted shells. At 547k tetrahedra the two
-rings change one of 105,681 nodes (by 1e-4 mm); when they were chosen they cost 0.78 s for both
-surfaces against 0.52-0.60 s for one (both are faster now, see `BLOCK`). For points far from the surface (deep in the cavity, away from the wall) nothing
-guarantees that the rings hold the closest triangle; on the tests' tilted shells one ring missed
-1 of 250 such points by 3e-4 of the distance and two rings none (tests/test_surface_distance.py).
+(2005), section 5.1.5, from memory, written for arrays. The closest point of a surface of
+nearly even triangles lies in the rings of the nearest vertices. One ring is not always enough:
+on a spheroidal shell meshed at 3 mm (2,667 nodes) the ring of the nearest vertex missed the
+closest epicardial triangle at one node, by 0.007 mm, and only in one of two rigidly moved
+copies, so the depth was not invariant under a rigid motion; the rings of the two nearest equal
+brute force at every node of both copies and of the tests' tilted shells. At 547k tetrahedra
+the two rings change one of 105,681 nodes (by 1e-4 mm); when they were chosen they cost 0.78 s
+for both surfaces against 0.52-0.60 s for one (both are faster now, see `BLOCK`). For points
+far from the surface (deep in the cavity, away from the wall) nothing guarantees that the rings
+hold the closest triangle; on the tests' tilted shells one ring missed 1 of 250 such points by
+3e-4 of the distance and two rings none (tests/test_surface_distance.py).
 """
 
 from __future__ import annotations
